@@ -1,0 +1,111 @@
+"""BIDS-style path patterns: run discovery and entity parsing (file names only).
+
+Discovery matches the configured ``bold`` pattern against the file system with
+one ``glob`` and a regular expression; no image is opened, so the Snakefile
+stays cheap to parse on a cluster where every job re-reads it.
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+from .errors import ConfigError
+
+#: Placeholders a path pattern may use; ``session`` is optional.
+PLACEHOLDERS: tuple[str, ...] = ("subject", "session", "task", "run")
+_VALUE = r"[A-Za-z0-9]+"
+
+
+@dataclass(frozen=True, order=True)
+class RunKey:
+    """One run of one subject, identified by its BIDS entities."""
+
+    subject: str
+    task: str
+    run: str
+    session: str = ""
+
+    @property
+    def run_id(self) -> str:
+        """Folder name of the run under its subject, e.g. ``ses-1_task-stroop_run-2``."""
+        parts = ([f"ses-{self.session}"] if self.session else []) + [f"task-{self.task}", f"run-{self.run}"]
+        return "_".join(parts)
+
+    def fill(self, pattern: str) -> str:
+        """Substitute this run's entities into a path pattern."""
+        return pattern.format(subject=self.subject, session=self.session, task=self.task, run=self.run)
+
+
+def parse_run_id(subject: str, run_id: str) -> RunKey:
+    """Inverse of :attr:`RunKey.run_id`.
+
+    Examples
+    --------
+    >>> parse_run_id("01", "task-stroop_run-2")
+    RunKey(subject='01', task='stroop', run='2', session='')
+    """
+    m = re.fullmatch(rf"(?:ses-(?P<session>{_VALUE})_)?task-(?P<task>{_VALUE})_run-(?P<run>{_VALUE})", run_id)
+    if not m:
+        raise ConfigError(f"run folder name {run_id!r} is not of the form [ses-X_]task-Y_run-Z")
+    return RunKey(subject=subject, task=m["task"], run=m["run"], session=m["session"] or "")
+
+
+def check_pattern(name: str, pattern: str) -> None:
+    """Check that a path pattern uses only known placeholders and includes subject, task, run."""
+    used = set(re.findall(r"{([^{}]*)}", pattern))
+    unknown = used - set(PLACEHOLDERS)
+    if unknown:
+        raise ConfigError(f"config inputs.{name}: unknown placeholder(s) {sorted(unknown)} in {pattern!r}; "
+                          f"use only {{subject}}, {{session}}, {{task}}, {{run}}")
+    missing = {"subject", "task", "run"} - used
+    if name == "bold" and missing:
+        raise ConfigError(f"config inputs.bold: pattern {pattern!r} lacks {sorted(missing)}; "
+                          "the bold pattern must identify subject, task and run")
+
+
+def pattern_to_regex(pattern: str) -> re.Pattern[str]:
+    """Compile a path pattern into a regex with one named group per placeholder."""
+    out, pos, seen = [], 0, set()
+    for m in re.finditer(r"{(subject|session|task|run)}", pattern):
+        out.append(re.escape(pattern[pos:m.start()]))
+        name = m.group(1)
+        out.append(f"(?P={name})" if name in seen else f"(?P<{name}>{_VALUE})")
+        seen.add(name)
+        pos = m.end()
+    out.append(re.escape(pattern[pos:]))
+    return re.compile("".join(out))
+
+
+def discover_runs(root: str | os.PathLike[str], bold_pattern: str) -> list[RunKey]:
+    """Find every run whose BOLD file matches ``bold_pattern`` below ``root``.
+
+    Parameters
+    ----------
+    root : path-like
+        Dataset folder.
+    bold_pattern : str
+        Path pattern relative to ``root`` with ``{subject}``, ``{task}``,
+        ``{run}`` and optionally ``{session}``.
+
+    Returns
+    -------
+    list of RunKey
+        Sorted by subject, task, run, session.
+    """
+    check_pattern("bold", bold_pattern)
+    root_path = Path(root)
+    if not root_path.is_dir():
+        raise ConfigError(f"config inputs.root: folder {root} does not exist; set it to your dataset folder")
+    regex = pattern_to_regex(bold_pattern)
+    wildcard = re.sub(r"{[^{}]*}", "*", bold_pattern)
+    runs = []
+    for found in glob.glob(wildcard, root_dir=root_path):
+        m = regex.fullmatch(found.replace(os.sep, "/"))
+        if m:
+            g = m.groupdict()
+            runs.append(RunKey(subject=g["subject"], task=g["task"], run=g["run"], session=g.get("session") or ""))
+    return sorted(set(runs))

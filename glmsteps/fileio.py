@@ -1,0 +1,127 @@
+"""Atomic file writing and the small table readers every stage shares.
+
+Every output is written to a temporary file in its destination folder and then
+renamed over the final name (``os.replace`` is atomic on POSIX), so a crash or
+an interrupted job never leaves a half-written output behind. Inputs are only
+ever opened for reading.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+#: Compound file extensions recognised when naming temporaries and sidecars.
+KNOWN_EXTENSIONS: tuple[str, ...] = (".nii.gz", ".nii", ".tsv", ".json", ".h5", ".png", ".svg", ".html", ".txt")
+
+
+def split_extension(path: str | os.PathLike[str]) -> tuple[str, str]:
+    """Split a path into stem and (possibly compound) extension.
+
+    Examples
+    --------
+    >>> split_extension("a/z.nii.gz")
+    ('a/z', '.nii.gz')
+    >>> split_extension("fit.h5")
+    ('fit', '.h5')
+    """
+    text = os.fspath(path)
+    for ext in KNOWN_EXTENSIONS:
+        if text.endswith(ext):
+            return text[: -len(ext)], ext
+    stem, ext = os.path.splitext(text)
+    return stem, ext
+
+
+@contextlib.contextmanager
+def atomic_path(final: str | os.PathLike[str]) -> Iterator[Path]:
+    """Yield a temporary path next to ``final``; rename it over ``final`` on success.
+
+    The temporary keeps the final extension (``.nii.gz`` etc.) so that writers
+    choose the right format. On an exception the temporary is removed and the
+    final path is left untouched.
+    """
+    final_path = Path(final)
+    final_path.parent.mkdir(parents=True, exist_ok=True)
+    stem, ext = split_extension(final_path.name)
+    tmp = final_path.parent / f".{stem}.{uuid.uuid4().hex[:8]}.tmp{ext}"
+    try:
+        yield tmp
+        os.replace(tmp, final_path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def write_text(path: str | os.PathLike[str], text: str) -> None:
+    """Write ``text`` (UTF-8) to ``path`` atomically."""
+    with atomic_path(path) as tmp:
+        tmp.write_text(text, encoding="utf-8")
+
+
+def _json_default(obj: Any) -> Any:
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, Path):
+        return str(obj)
+    raise TypeError(f"cannot serialise {type(obj).__name__} to JSON")
+
+
+def write_json(path: str | os.PathLike[str], data: Any) -> None:
+    """Write ``data`` as indented JSON atomically (NaN is not allowed)."""
+    write_text(path, json.dumps(data, indent=2, sort_keys=True, default=_json_default, allow_nan=False) + "\n")
+
+
+def read_json(path: str | os.PathLike[str]) -> Any:
+    """Read a JSON file."""
+    with open(path, encoding="utf-8") as handle:
+        return json.load(handle)
+
+
+def write_tsv(path: str | os.PathLike[str], table: pd.DataFrame) -> None:
+    """Write a table as a BIDS-style TSV atomically (missing values as ``n/a``)."""
+    with atomic_path(path) as tmp:
+        table.to_csv(tmp, sep="\t", index=False, na_rep="n/a", lineterminator="\n")
+
+
+def read_tsv(path: str | os.PathLike[str]) -> pd.DataFrame:
+    """Read a BIDS-style TSV: tab separated, ``n/a`` for missing values.
+
+    Only ``n/a`` (and empty cells) count as missing, so that a condition called
+    ``NA`` or ``null`` survives as text.
+    """
+    return pd.read_csv(path, sep="\t", na_values=["n/a", ""], keep_default_na=False)
+
+
+def save_nifti(path: str | os.PathLike[str], data: np.ndarray, affine: np.ndarray,
+               header: Any | None = None, dtype: Any = np.float32) -> None:
+    """Save a 3D or 4D array as NIfTI-1 atomically.
+
+    Parameters
+    ----------
+    path : path-like
+        Destination; ``.nii`` or ``.nii.gz``.
+    data : ndarray, shape (nx, ny, nz) or (nx, ny, nz, nt)
+        Values; cast to ``dtype`` (float32 for stored maps).
+    affine : ndarray, shape (4, 4)
+        Voxel-to-world transform in mm.
+    header : nibabel header, optional
+        Template header (units, TR) to copy.
+    """
+    import nibabel as nib
+
+    img = nib.Nifti1Image(np.asarray(data, dtype=dtype), np.asarray(affine, dtype=np.float64), header=header)
+    img.set_data_dtype(dtype)
+    img.header.set_xyzt_units("mm", "sec")
+    with atomic_path(path) as tmp:
+        nib.save(img, tmp)

@@ -1,0 +1,211 @@
+"""Provenance records: parameter hashes, input content hashes, lineage.
+
+Every output of every step has a JSON sidecar (``sidecar_path``) holding a
+provenance record; HDF5 outputs also carry it in their root attributes.
+
+A record holds:
+
+``step``
+    The step's name (``validate_events``, ``fit``, ...).
+``glmsteps_version``
+    The library version that wrote it.
+``params`` / ``params_hash``
+    The exact settings the step used, and the sha256 of their canonical JSON.
+``inputs``
+    For each named input: its path (relative to the working folder where
+    possible), the sha256 of its bytes, and the ``params_hash`` and
+    ``lineage_hash`` of the step that produced it (``null`` for raw inputs).
+``lineage_hash``
+    sha256 of the step name, its ``params_hash`` and the lineage hashes of its
+    inputs (a raw input's lineage hash is its content hash). Two outputs share
+    a lineage hash exactly when the same settings and the same raw inputs made
+    them; paths and timestamps never enter it.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import math
+import os
+import warnings
+from collections.abc import Iterator, Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+from . import __version__
+from .errors import ProvenanceError
+from .fileio import read_json, split_extension, write_json
+
+_HASH_BLOCK = 1 << 20
+
+
+def canonical_json(obj: Any) -> str:
+    """Serialise ``obj`` to canonical JSON: sorted keys, no spaces, no NaN.
+
+    Floats that are whole numbers are written as floats (``1.0``), so ``1``
+    and ``1.0`` hash differently only where the config itself differs in type.
+    """
+    return json.dumps(_normalise(obj), sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False)
+
+
+def _normalise(obj: Any) -> Any:
+    if isinstance(obj, Mapping):
+        return {str(k): _normalise(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_normalise(v) for v in obj]
+    if hasattr(obj, "item") and callable(obj.item) and not isinstance(obj, (str, bytes)):
+        return _normalise(obj.item())
+    if isinstance(obj, float) and not math.isfinite(obj):
+        raise ProvenanceError(f"parameter value {obj!r} is not finite; use a finite number")
+    if isinstance(obj, Path):
+        return str(obj)
+    return obj
+
+
+def hash_params(params: Mapping[str, Any]) -> str:
+    """sha256 (hex) of the canonical JSON of ``params``."""
+    return hashlib.sha256(canonical_json(params).encode("utf-8")).hexdigest()
+
+
+def hash_file(path: str | os.PathLike[str]) -> str:
+    """sha256 (hex) of a file's bytes, read in 1 MiB blocks."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(_HASH_BLOCK), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def sidecar_path(path: str | os.PathLike[str]) -> Path:
+    """The JSON sidecar of an output: same stem, ``.json`` extension.
+
+    A JSON output is its own sidecar (its record sits under ``provenance``).
+
+    Examples
+    --------
+    >>> str(sidecar_path("out/contrast-a/z.nii.gz"))
+    'out/contrast-a/z.json'
+    """
+    stem, ext = split_extension(path)
+    return Path(stem + ".json") if ext != ".json" else Path(path)
+
+
+def display_path(path: str | os.PathLike[str]) -> str:
+    """A path as recorded: relative to the working folder when below it."""
+    p = Path(path)
+    try:
+        return str(p.resolve().relative_to(Path.cwd().resolve()))
+    except ValueError:
+        return str(p)
+
+
+def read_record(path: str | os.PathLike[str]) -> dict[str, Any] | None:
+    """The provenance record of an output, or ``None`` for a raw input.
+
+    Looks in the JSON sidecar (or, for a JSON output, its ``provenance`` key).
+    """
+    side = sidecar_path(path)
+    if not side.exists():
+        return None
+    try:
+        data = read_json(side)
+    except (OSError, json.JSONDecodeError) as exc:
+        raise ProvenanceError(f"{side}: cannot read provenance sidecar ({exc}); delete it and rerun the step") from exc
+    if isinstance(data, dict) and "provenance" in data and isinstance(data["provenance"], dict):
+        data = data["provenance"]
+    if not isinstance(data, dict) or "lineage_hash" not in data:
+        return None
+    return data
+
+
+def describe_input(path: str | os.PathLike[str]) -> dict[str, Any]:
+    """Describe one input file for a record: path, content hash, producer hashes."""
+    content = hash_file(path)
+    producer = read_record(path)
+    return {
+        "path": display_path(path),
+        "sha256": content,
+        "step": producer.get("step") if producer else None,
+        "params_hash": producer.get("params_hash") if producer else None,
+        "lineage_hash": producer["lineage_hash"] if producer else content,
+    }
+
+
+def lineage_hash(step: str, params_hash: str, inputs: Mapping[str, Any]) -> str:
+    """Combine a step's identity with its inputs' lineage hashes (sha256 hex)."""
+    lineage = {name: ([d["lineage_hash"] for d in desc] if isinstance(desc, list) else desc["lineage_hash"])
+               for name, desc in inputs.items()}
+    payload = canonical_json({"step": step, "params_hash": params_hash, "inputs": lineage})
+    return hashlib.sha256(payload.encode("utf-8")).hexdigest()
+
+
+def build_record(step: str, params: Mapping[str, Any],
+                 inputs: Mapping[str, str | os.PathLike[str] | Sequence[str | os.PathLike[str]]],
+                 warnings_seen: Sequence[str] = (), **extra: Any) -> dict[str, Any]:
+    """Build the provenance record of a step's outputs.
+
+    Parameters
+    ----------
+    step : str
+        Step name.
+    params : mapping
+        Exactly the settings the step used (its rule's ``params``).
+    inputs : mapping of name to path or list of paths
+        The files the step read.
+    warnings_seen : sequence of str
+        Warning messages raised while the step ran.
+    **extra
+        Step-specific summary fields (counts, exclusions, ...).
+    """
+    described: dict[str, Any] = {}
+    for name, value in inputs.items():
+        if isinstance(value, (str, os.PathLike)):
+            described[name] = describe_input(value)
+        else:
+            described[name] = [describe_input(v) for v in value]
+    p_hash = hash_params(params)
+    record: dict[str, Any] = {
+        "step": step,
+        "glmsteps_version": __version__,
+        "params": _normalise(dict(params)),
+        "params_hash": p_hash,
+        "inputs": described,
+        "lineage_hash": lineage_hash(step, p_hash, described),
+        "warnings": list(warnings_seen),
+    }
+    record.update(extra)
+    return record
+
+
+def write_sidecar(output: str | os.PathLike[str], record: Mapping[str, Any], **extra: Any) -> Path:
+    """Write the sidecar of ``output`` atomically; return its path.
+
+    Write the sidecar before the output itself, so that an output that exists
+    always has its sidecar.
+    """
+    side = sidecar_path(output)
+    data = dict(record)
+    data.update(extra)
+    write_json(side, data)
+    return side
+
+
+@contextlib.contextmanager
+def collect_warnings() -> Iterator[list[str]]:
+    """Record every warning raised inside the block as text (and still show it).
+
+    Yields a list that fills with ``"Category: message"`` strings, for the
+    sidecar's ``warnings`` field.
+    """
+    messages: list[str] = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            yield messages
+        finally:
+            for w in caught:
+                messages.append(f"{w.category.__name__}: {w.message}")
+    for text in messages:
+        print(f"warning: {text}")
