@@ -1,0 +1,1 @@
+"""Figures (matplotlib, Agg backend), in glmsteps' own visual style."""
