@@ -69,8 +69,12 @@ def run_script(job: JobFunction, smk: SnakemakeLike) -> None:
     log_files = list(getattr(smk, "log", []) or [])
     logger = setup_logging(str(log_files[0]) if log_files else None)
     start = time.perf_counter()
+    params = _named(smk.params)
+    if set(params) == {"settings"}:
+        # rules whose params depend on wildcards pass them as one mapping named `settings`
+        params = dict(params["settings"])
     try:
-        job(inputs=_named(smk.input), outputs=_named(smk.output), params=_named(smk.params),
+        job(inputs=_named(smk.input), outputs=_named(smk.output), params=params,
             wildcards=_named(smk.wildcards), threads=int(getattr(smk, "threads", 1) or 1))
     except GlmstepsError as exc:
         logger.error("%s: %s", type(exc).__name__, exc)

@@ -1,0 +1,31 @@
+# glmsteps: task-fMRI GLM analysis as a cached, auditable Snakemake workflow.
+# Wiring only; see DEVELOPERS.md. Run: snakemake --cores N [--configfile your.yaml]
+
+from snakemake.utils import min_version
+
+min_version("9.0")
+
+
+# The toy study's config is the default; a --configfile given on the command line replaces
+# it entirely (Snakemake would otherwise merge the two, mixing the toy contrasts into yours).
+if not workflow.configfiles:
+
+    configfile: workflow.source_path("config/config.yaml")
+
+
+include: "rules/common.smk"
+include: "rules/events.smk"
+include: "rules/confounds.smk"
+include: "rules/design.smk"
+include: "rules/fit.smk"
+include: "rules/contrasts.smk"
+include: "rules/combine.smk"
+include: "rules/threshold.smk"
+include: "rules/group.smk"
+include: "rules/report.smk"
+
+
+rule all:
+    input:
+        all_targets(),
+    default_target: True

@@ -1,0 +1,347 @@
+# Helpers that turn the validated config into targets, input paths and per-step params.
+# Every params helper returns exactly the settings its step uses (and nothing broader), so
+# that Snakemake's params trigger reruns precisely what a config edit affects.
+
+import os
+import re
+import sys
+
+from snakemake.utils import validate
+
+from glmsteps.bids import RunKey, check_pattern, discover_runs, parse_run_id
+from glmsteps.errors import ConfigError
+
+validate(config, workflow.source_path("../config/schema.yaml"), set_default=True)
+
+OUT = config["output_dir"].rstrip("/")
+_INPUTS = config["inputs"]
+_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_]*$")
+
+
+def _config_error(message):
+    """Stop the workflow with a one-line configuration error (no traceback)."""
+    sys.stderr.write(f"glmsteps: ConfigError: {message}\n")
+    raise SystemExit(1)
+
+
+def _check_names(kind, names):
+    for name in names:
+        if not _NAME.match(name):
+            _config_error(f"{kind} name {name!r} must be letters, digits and underscores, starting with a letter or digit")
+
+
+def discovered_runs():
+    """Runs found by matching the bold pattern on disk (file names only, no image is opened)."""
+    try:
+        for key in ("bold", "events", "confounds", "mask"):
+            check_pattern(key, _INPUTS[key])
+        runs = discover_runs(_INPUTS["root"], _INPUTS["bold"])
+    except ConfigError as exc:
+        _config_error(str(exc))
+    if _INPUTS["subjects"]:
+        runs = [r for r in runs if r.subject in set(_INPUTS["subjects"])]
+    if _INPUTS["tasks"]:
+        runs = [r for r in runs if r.task in set(_INPUTS["tasks"])]
+    if not runs:
+        _config_error(f"no BOLD file under {_INPUTS['root']} matches inputs.bold = {_INPUTS['bold']!r}; "
+                      "check inputs.root and the pattern")
+    return runs
+
+
+RUNS = discovered_runs()
+SUBJECTS = sorted({r.subject for r in RUNS})
+RUNS_OF_SUBJECT = {s: [r for r in RUNS if r.subject == s] for s in SUBJECTS}
+CONTRASTS = config["contrasts"]
+T_CONTRASTS = [name for name, spec in CONTRASTS.items() if "weights" in spec]
+F_CONTRASTS = [name for name, spec in CONTRASTS.items() if "rows" in spec]
+THRESHOLDS = config["thresholds"]
+GROUP_MODELS = config["group_models"]
+_check_names("contrast", CONTRASTS)
+for _level in ("run", "subject", "group"):
+    _check_names(f"thresholds.{_level}", THRESHOLDS[_level])
+_check_names("group model", GROUP_MODELS)
+for _model, _spec in GROUP_MODELS.items():
+    _check_names(f"group_models.{_model}.group_contrasts", _spec["group_contrasts"])
+    for _c in _spec["contrasts"]:
+        if _c not in T_CONTRASTS:
+            _config_error(f"group_models.{_model}.contrasts: {_c!r} is not a t contrast of the contrasts section "
+                          f"(t contrasts: {', '.join(T_CONTRASTS) or 'none'})")
+
+
+def _alternation(names):
+    """Regex that matches exactly one of ``names`` (never matches when empty)."""
+    return "|".join(re.escape(n) for n in names) if names else "(?!x)x"
+
+
+wildcard_constraints:
+    subject="[A-Za-z0-9]+",
+    run_id="(ses-[A-Za-z0-9]+_)?task-[A-Za-z0-9]+_run-[A-Za-z0-9]+",
+    contrast=_alternation(list(CONTRASTS)),
+    tcon=_alternation(T_CONTRASTS),
+    fcon=_alternation(F_CONTRASTS),
+    threshold="[A-Za-z0-9_]+",
+    model="[A-Za-z0-9_]+",
+    gcon="[A-Za-z0-9_]+",
+
+
+# ---------------------------------------------------------------- paths
+RUN_DIR = OUT + "/sub-{subject}/{run_id}"
+SUBJECT_DIR = OUT + "/sub-{subject}/combined"
+GROUP_DIR = OUT + "/group/model-{model}/contrast-{tcon}/{gcon}"
+LOG_DIR = OUT + "/logs"
+
+
+def _raw(kind, wildcards):
+    key = parse_run_id(wildcards.subject, wildcards.run_id)
+    return os.path.join(_INPUTS["root"], key.fill(_INPUTS[kind]))
+
+
+def bold_file(wildcards):
+    """Raw BOLD NIfTI of a run."""
+    return _raw("bold", wildcards)
+
+
+def events_file(wildcards):
+    """Raw events TSV of a run."""
+    return _raw("events", wildcards)
+
+
+def confounds_file(wildcards):
+    """Raw confounds TSV of a run."""
+    return _raw("confounds", wildcards)
+
+
+def mask_file(wildcards):
+    """Mask NIfTI of a run."""
+    return _raw("mask", wildcards)
+
+
+def participants_file():
+    """The BIDS participants table."""
+    return os.path.join(_INPUTS["root"], _INPUTS["participants"])
+
+
+def runs_of(subject):
+    """Run folder names (run_id) of one subject."""
+    return [r.run_id for r in RUNS_OF_SUBJECT[subject]]
+
+
+def run_maps_of(wildcards, stat):
+    """One subject's run-level maps of a t contrast (one per run)."""
+    return [f"{OUT}/sub-{wildcards.subject}/{rid}/contrast-{wildcards.tcon}/{stat}.nii.gz"
+            for rid in runs_of(wildcards.subject)]
+
+
+def run_effects(wildcards):
+    return run_maps_of(wildcards, "effect")
+
+
+def run_variances(wildcards):
+    return run_maps_of(wildcards, "variance")
+
+
+def subject_underlay(wildcards):
+    """Mean image of a subject's first run (figure underlay)."""
+    return f"{OUT}/sub-{wildcards.subject}/{runs_of(wildcards.subject)[0]}/mean.nii.gz"
+
+
+def group_underlay(wildcards):
+    """Mean image of the first subject's first run (all subjects share one grid)."""
+    return f"{OUT}/sub-{SUBJECTS[0]}/{runs_of(SUBJECTS[0])[0]}/mean.nii.gz"
+
+
+def subject_maps_of(wildcards, stat):
+    return [f"{OUT}/sub-{s}/combined/contrast-{wildcards.tcon}/{stat}.nii.gz" for s in SUBJECTS]
+
+
+def subject_effects(wildcards):
+    return subject_maps_of(wildcards, "effect")
+
+
+def subject_variances(wildcards):
+    return subject_maps_of(wildcards, "variance")
+
+
+# ---------------------------------------------------------------- params (one helper per step)
+def events_params():
+    """validate_events: the condition column, modulator columns and TR."""
+    modulators = sorted({c for cols in config["events"]["modulators"].values() for c in cols})
+    return {"condition_column": config["events"]["condition_column"], "modulators": modulators,
+            "repetition_time_s": config["acquisition"]["repetition_time_s"]}
+
+
+def confounds_params():
+    """select_confounds: the whole confounds section (selection, expansion, censoring)."""
+    section = dict(config["confounds"])
+    return section
+
+
+def design_params():
+    """build_design: HRF, drift, timing and condition settings."""
+    d = config["design"]
+    return {"hrf": d["hrf"], "fir_bins": d["fir_bins"], "fir_bin_width_s": d["fir_bin_width_s"],
+            "time_resolution_s": d["time_resolution_s"], "drift_model": d["drift"]["model"],
+            "cutoff_s": d["drift"]["cutoff_s"], "legendre_order": d["drift"]["legendre_order"],
+            "repetition_time_s": config["acquisition"]["repetition_time_s"],
+            "slice_time_ref": config["acquisition"]["slice_time_ref"],
+            "conditions": list(config["events"]["conditions"]),
+            "modulators": {k: list(v) for k, v in config["events"]["modulators"].items()}}
+
+
+def fit_params():
+    """fit: scaling and noise model (chunk size and threads do not change results)."""
+    f = config["fit"]
+    return {"scaling": f["scaling"], "grand_mean_value": f["grand_mean_value"], "noise_model": f["noise_model"],
+            "ar_order": f["ar_order"], "ar_smoothing_fwhm_mm": f["ar_smoothing_fwhm_mm"],
+            "ar_bin_width": f["ar_bin_width"], "repetition_time_s": config["acquisition"]["repetition_time_s"]}
+
+
+def all_contrast_definitions():
+    """design_contrasts: every contrast's definition (a cheap per-run report)."""
+    return {name: dict(spec) for name, spec in CONTRASTS.items()}
+
+
+def _contrast_params(name):
+    spec = CONTRASTS[name]
+    return {"name": name, "definition": dict(spec), "tail": spec.get("tail", "two-sided"),
+            "skip_nonestimable": config["contrast_options"]["skip_nonestimable"]}
+
+
+def t_contrast_params(wildcards):
+    """contrast (t): this contrast's definition only."""
+    return _contrast_params(wildcards.tcon)
+
+
+def f_contrast_params(wildcards):
+    """contrast (F): this contrast's definition only."""
+    return _contrast_params(wildcards.fcon)
+
+
+def combine_params(wildcards):
+    """combine_runs: the contrast's name and tail."""
+    return {"name": wildcards.tcon, "tail": CONTRASTS[wildcards.tcon].get("tail", "two-sided")}
+
+
+_THRESHOLD_KEYS = {
+    "uncorrected": ("p", "min_cluster_voxels", "connectivity"),
+    "fdr": ("q", "min_cluster_voxels", "connectivity"),
+    "bonferroni": ("alpha", "min_cluster_voxels", "connectivity"),
+    "cluster_extent": ("forming_p", "min_cluster_voxels", "connectivity"),
+}
+
+
+def _threshold_params(level, name):
+    """threshold: only the keys its method uses (schema defaults fill the others)."""
+    setting = THRESHOLDS[level][name]
+    keys = _THRESHOLD_KEYS[setting["method"]]
+    return {"name": name, "level": level, "method": setting["method"], **{k: setting[k] for k in keys}}
+
+
+def run_threshold_params(wildcards):
+    return _threshold_params("run", wildcards.threshold)
+
+
+def subject_threshold_params(wildcards):
+    return _threshold_params("subject", wildcards.threshold)
+
+
+def group_threshold_params(wildcards):
+    return _threshold_params("group", wildcards.threshold)
+
+
+def group_model_params(wildcards):
+    """group: the model's settings and this job's group contrast (never the permutation settings)."""
+    spec = GROUP_MODELS[wildcards.model]
+    keep = {k: v for k, v in spec.items() if k not in ("group_contrasts", "permutation", "contrasts")}
+    return {**keep, "model": wildcards.model,
+            "contrast": {"name": wildcards.gcon, "weights": dict(spec["group_contrasts"][wildcards.gcon])}}
+
+
+def group_permutation_params(wildcards):
+    """group_permutation: the model, the group contrast and the permutation settings."""
+    return {**group_model_params(wildcards), "permutation": dict(GROUP_MODELS[wildcards.model]["permutation"])}
+
+
+# ---------------------------------------------------------------- resources
+def fit_mem_mb(wildcards, attempt):
+    """Memory for a fit job from the BOLD header: in-mask float32 data x 2.5 plus 500 MB, more on retry."""
+    import nibabel as nib
+
+    shape = nib.load(bold_file(wildcards)).shape
+    n_values = 1
+    for n in shape:
+        n_values *= int(n)
+    return int(500 + 2.5 * 4 * n_values / 2**20) * attempt
+
+
+# ---------------------------------------------------------------- targets
+def group_contrasts_of(model):
+    return list(GROUP_MODELS[model]["group_contrasts"])
+
+
+def group_inputs_of(model):
+    return GROUP_MODELS[model]["contrasts"] or T_CONTRASTS
+
+
+def run_targets():
+    targets = []
+    for r in RUNS:
+        base = f"{OUT}/sub-{r.subject}/{r.run_id}"
+        targets += [f"{base}/design_contrasts.json", f"{base}/design_correlation.png", f"{base}/confounds.png"]
+        for name in CONTRASTS:
+            targets.append(f"{base}/contrast-{name}/z.nii.gz")
+            targets += [f"{base}/contrast-{name}/threshold-{t}/clusters.tsv" for t in THRESHOLDS["run"]]
+    return targets
+
+
+def subject_targets():
+    targets = []
+    for s in SUBJECTS:
+        for name in T_CONTRASTS:
+            base = f"{OUT}/sub-{s}/combined/contrast-{name}"
+            targets.append(f"{base}/z.nii.gz")
+            targets += [f"{base}/threshold-{t}/clusters.tsv" for t in THRESHOLDS["subject"]]
+    return targets
+
+
+def group_targets():
+    targets = []
+    for model, spec in GROUP_MODELS.items():
+        for name in group_inputs_of(model):
+            for gcon in group_contrasts_of(model):
+                base = f"{OUT}/group/model-{model}/contrast-{name}/{gcon}"
+                targets.append(f"{base}/z.nii.gz")
+                if spec["permutation"]:
+                    targets.append(f"{base}/p_fwe.nii.gz")
+                    if spec["permutation"]["tfce"]:
+                        targets.append(f"{base}/p_fwe_tfce.nii.gz")
+                targets += [f"{base}/threshold-{t}/clusters.tsv" for t in THRESHOLDS["group"]]
+    return targets
+
+
+def indexed_maps():
+    """Every statistical map that index.tsv lists."""
+    maps = []
+    for r in RUNS:
+        base = f"{OUT}/sub-{r.subject}/{r.run_id}"
+        for name in T_CONTRASTS:
+            maps += [f"{base}/contrast-{name}/{s}.nii.gz" for s in ("effect", "variance", "t", "z", "p")]
+        for name in F_CONTRASTS:
+            maps += [f"{base}/contrast-{name}/{s}.nii.gz" for s in ("f", "z", "p")]
+    for s in SUBJECTS:
+        for name in T_CONTRASTS:
+            maps += [f"{OUT}/sub-{s}/combined/contrast-{name}/{x}.nii.gz" for x in ("effect", "variance", "t", "z", "p")]
+    for model, spec in GROUP_MODELS.items():
+        for name in group_inputs_of(model):
+            for gcon in group_contrasts_of(model):
+                base = f"{OUT}/group/model-{model}/contrast-{name}/{gcon}"
+                maps += [f"{base}/{x}.nii.gz" for x in ("effect", "variance", "t", "z", "p")]
+                if spec["permutation"]:
+                    maps += [f"{base}/{x}.nii.gz" for x in ("p_fwe", "p_fwe_cluster")]
+                    if spec["permutation"]["tfce"]:
+                        maps.append(f"{base}/p_fwe_tfce.nii.gz")
+    return maps
+
+
+def all_targets():
+    return run_targets() + subject_targets() + group_targets() + [f"{OUT}/index.tsv"]

@@ -1,0 +1,13 @@
+rule select_confounds:
+    input:
+        confounds=confounds_file,
+    output:
+        confounds=RUN_DIR + "/confounds.tsv",
+        summary=RUN_DIR + "/confounds.json",
+        figure=RUN_DIR + "/confounds.png",
+    params:
+        **confounds_params(),
+    log:
+        LOG_DIR + "/sub-{subject}/{run_id}/select_confounds.log",
+    script:
+        "../scripts/select_confounds.py"

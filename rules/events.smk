@@ -1,0 +1,13 @@
+rule validate_events:
+    input:
+        events=events_file,
+        bold=bold_file,
+    output:
+        events=RUN_DIR + "/events.tsv",
+        summary=RUN_DIR + "/events.json",
+    params:
+        **events_params(),
+    log:
+        LOG_DIR + "/sub-{subject}/{run_id}/validate_events.log",
+    script:
+        "../scripts/validate_events.py"

@@ -1,0 +1,20 @@
+rule fit:
+    input:
+        bold=bold_file,
+        mask=mask_file,
+        design=RUN_DIR + "/design.tsv",
+        design_summary=RUN_DIR + "/design.json",
+    output:
+        fit=RUN_DIR + "/fit.h5",
+        mean=RUN_DIR + "/mean.nii.gz",
+        residual_sd=RUN_DIR + "/residual_sd.nii.gz",
+        ar_coef=RUN_DIR + "/ar_coef.nii.gz",
+    params:
+        **fit_params(),
+    resources:
+        mem_mb=fit_mem_mb,
+        runtime=30,
+    log:
+        LOG_DIR + "/sub-{subject}/{run_id}/fit.log",
+    script:
+        "../scripts/fit.py"

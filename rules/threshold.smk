@@ -1,0 +1,57 @@
+# One job per map per threshold setting; outputs sit beside the map they threshold.
+rule threshold_run:
+    input:
+        z=RUN_DIR + "/contrast-{contrast}/z.nii.gz",
+        p=RUN_DIR + "/contrast-{contrast}/p.nii.gz",
+        underlay=RUN_DIR + "/mean.nii.gz",
+    output:
+        thresholded=RUN_DIR + "/contrast-{contrast}/threshold-{threshold}/thresholded.nii.gz",
+        mask=RUN_DIR + "/contrast-{contrast}/threshold-{threshold}/mask.nii.gz",
+        clusters=RUN_DIR + "/contrast-{contrast}/threshold-{threshold}/clusters.tsv",
+        figure=RUN_DIR + "/contrast-{contrast}/threshold-{threshold}/slices.png",
+    params:
+        settings=run_threshold_params,
+    group:
+        "subject_{subject}"
+    log:
+        LOG_DIR + "/sub-{subject}/{run_id}/contrast-{contrast}_threshold-{threshold}.log",
+    script:
+        "../scripts/threshold.py"
+
+
+rule threshold_subject:
+    input:
+        z=SUBJECT_DIR + "/contrast-{tcon}/z.nii.gz",
+        p=SUBJECT_DIR + "/contrast-{tcon}/p.nii.gz",
+        underlay=subject_underlay,
+    output:
+        thresholded=SUBJECT_DIR + "/contrast-{tcon}/threshold-{threshold}/thresholded.nii.gz",
+        mask=SUBJECT_DIR + "/contrast-{tcon}/threshold-{threshold}/mask.nii.gz",
+        clusters=SUBJECT_DIR + "/contrast-{tcon}/threshold-{threshold}/clusters.tsv",
+        figure=SUBJECT_DIR + "/contrast-{tcon}/threshold-{threshold}/slices.png",
+    params:
+        settings=subject_threshold_params,
+    group:
+        "subject_{subject}"
+    log:
+        LOG_DIR + "/sub-{subject}/combined/contrast-{tcon}_threshold-{threshold}.log",
+    script:
+        "../scripts/threshold.py"
+
+
+rule threshold_group:
+    input:
+        z=GROUP_DIR + "/z.nii.gz",
+        p=GROUP_DIR + "/p.nii.gz",
+        underlay=group_underlay,
+    output:
+        thresholded=GROUP_DIR + "/threshold-{threshold}/thresholded.nii.gz",
+        mask=GROUP_DIR + "/threshold-{threshold}/mask.nii.gz",
+        clusters=GROUP_DIR + "/threshold-{threshold}/clusters.tsv",
+        figure=GROUP_DIR + "/threshold-{threshold}/slices.png",
+    params:
+        settings=group_threshold_params,
+    log:
+        LOG_DIR + "/group/model-{model}/contrast-{tcon}/{gcon}_threshold-{threshold}.log",
+    script:
+        "../scripts/threshold.py"

@@ -1,0 +1,82 @@
+"""Helpers for tests that run Snakemake on the toy study in a temporary folder."""
+
+from __future__ import annotations
+
+import os
+import re
+import subprocess
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+@dataclass
+class Workspace:
+    """A working folder with a config pointing at a toy dataset."""
+
+    workdir: Path
+    data: Path
+    config: dict[str, Any]
+
+    @property
+    def config_path(self) -> Path:
+        return self.workdir / "config.yaml"
+
+    @property
+    def results(self) -> Path:
+        return self.workdir / self.config["output_dir"]
+
+    def write_config(self) -> None:
+        self.config_path.write_text(yaml.safe_dump(self.config, sort_keys=False))
+
+    def snakemake(self, *args: str, check: bool = True, timeout: float = 1800) -> subprocess.CompletedProcess[str]:
+        """Run Snakemake on this workspace with the repository's Snakefile."""
+        env = dict(os.environ)
+        env["PYTHONPATH"] = str(REPO) + os.pathsep + env.get("PYTHONPATH", "")
+        cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "Snakefile"), "--directory",
+               str(self.workdir), "--configfile", str(self.config_path), *args]
+        proc = subprocess.run(cmd, capture_output=True, text=True, env=env, timeout=timeout)
+        if check and proc.returncode != 0:
+            raise AssertionError(f"snakemake failed ({proc.returncode}):\n{proc.stdout[-4000:]}\n{proc.stderr[-6000:]}")
+        return proc
+
+
+def default_config() -> dict[str, Any]:
+    """The repository's toy config as a dict."""
+    return yaml.safe_load((REPO / "config" / "config.yaml").read_text())
+
+
+def make_workspace(base: Path, data: Path, **overrides: Any) -> Workspace:
+    """A workspace under ``base`` analysing ``data`` with the toy config (plus overrides)."""
+    base.mkdir(parents=True, exist_ok=True)
+    config = default_config()
+    config["inputs"]["root"] = str(data)
+    config.update(overrides)
+    ws = Workspace(workdir=base, data=data, config=config)
+    ws.write_config()
+    return ws
+
+
+_JOB = re.compile(r"^rule (\S+):\s*$")
+_WILDCARDS = re.compile(r"^\s+wildcards: (.*)$")
+
+
+def planned_jobs(dry_run_output: str) -> list[tuple[str, dict[str, str]]]:
+    """(rule, wildcards) of every job a dry run would execute."""
+    jobs: list[tuple[str, dict[str, str]]] = []
+    for line in dry_run_output.splitlines():
+        m = _JOB.match(line.strip()) if line.startswith("rule ") or line.startswith("localrule ") else None
+        if line.startswith("localrule "):
+            m = re.match(r"^localrule (\S+):\s*$", line.strip())
+        if m:
+            jobs.append((m.group(1), {}))
+            continue
+        w = _WILDCARDS.match(line)
+        if w and jobs:
+            jobs[-1] = (jobs[-1][0], dict(kv.split("=", 1) for kv in w.group(1).split(", ")))
+    return jobs
