@@ -330,6 +330,15 @@ def build_chain(target: str, record: Mapping[str, Any], load_record: RecordLoade
     ProvenanceError
         A record lacks ``step``, ``params_hash``, ``lineage_hash`` or
         well-formed ``inputs``.
+
+    Notes
+    -----
+    A job is identified by ``(step, params_hash, lineage_hash, input paths and
+    sha256)``: the outputs of one job (``effect``, ``variance``, ...) share
+    these, while two runs of a step on identical copies of the data at other
+    paths do not. A produced input whose record is missing stays a leaf of
+    kind ``unresolved``. The provenance records are the project's own format
+    (:mod:`glmsteps.provenance`); no published method is involved.
     """
     nodes: dict[str, StepNode] = {}
     in_progress: set[str] = set()
@@ -627,6 +636,14 @@ def verify_chain(chain: Chain, current_sha256: ContentHasher) -> list[Check]:
     list of Check
         One per (file, consumer) pair, in chain order, plus one per record
         problem (missing, stale or inconsistent record).
+
+    Notes
+    -----
+    A file passes when ``sha256(current bytes) == recorded sha256`` (SHA-256,
+    FIPS 180-4). A produced file is also ``stale`` when the lineage hash in
+    its current record differs from the one its consumer recorded: it was
+    remade after it was read, so the consumer's output is out of date even if
+    the bytes happen to match.
     """
     cache: dict[str, str | None] = {}
     checks: list[Check] = []
