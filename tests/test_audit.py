@@ -19,6 +19,7 @@ from typing import Any
 import h5py
 import nibabel as nib
 import numpy as np
+import pandas as pd
 import pytest
 
 from glmsteps import audit, provenance
@@ -61,7 +62,6 @@ def make_chain(base: Path, fit_params: dict[str, Any] | None = None,
         Path(BOLD_RAW).write_bytes(_bold_bytes())
 
         rec = provenance.build_record("validate_events", EVENTS_PARAMS, {"events": EVENTS_RAW, "bold": BOLD_RAW})
-        import pandas as pd
         provenance.write_sidecar(f"{RUN}/events.tsv", rec)
         write_tsv(f"{RUN}/events.tsv", pd.DataFrame(rows, columns=["onset", "duration", "condition"]))
 
