@@ -196,11 +196,6 @@ def fit_params():
             "ar_bin_width": f["ar_bin_width"], "repetition_time_s": config["acquisition"]["repetition_time_s"]}
 
 
-def all_contrast_definitions():
-    """design_contrasts: every contrast's definition (a cheap per-run report)."""
-    return {name: dict(spec) for name, spec in CONTRASTS.items()}
-
-
 def _contrast_params(name):
     spec = CONTRASTS[name]
     return {"name": name, "definition": dict(spec), "tail": spec.get("tail", "two-sided"),
@@ -287,7 +282,7 @@ def run_targets():
     targets = []
     for r in RUNS:
         base = f"{OUT}/sub-{r.subject}/{r.run_id}"
-        targets += [f"{base}/design_contrasts.json", f"{base}/design_correlation.png", f"{base}/confounds.png"]
+        targets += [f"{base}/design_correlation.png", f"{base}/confounds.png"]
         for name in CONTRASTS:
             targets.append(f"{base}/contrast-{name}/z.nii.gz")
             targets += [f"{base}/contrast-{name}/threshold-{t}/clusters.tsv" for t in THRESHOLDS["run"]]

@@ -15,18 +15,3 @@ rule build_design:
     script:
         "../scripts/build_design.py"
 
-
-# Per-contrast estimability and efficiency of each run's design. Kept apart from
-# build_design so that adding a contrast reruns only this cheap report, never the fit.
-rule design_contrasts:
-    input:
-        design=RUN_DIR + "/design.tsv",
-        design_summary=RUN_DIR + "/design.json",
-    output:
-        report=RUN_DIR + "/design_contrasts.json",
-    params:
-        contrasts=all_contrast_definitions(),
-    log:
-        LOG_DIR + "/sub-{subject}/{run_id}/design_contrasts.log",
-    script:
-        "../scripts/design_contrasts.py"

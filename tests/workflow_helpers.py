@@ -34,12 +34,21 @@ class Workspace:
     def write_config(self) -> None:
         self.config_path.write_text(yaml.safe_dump(self.config, sort_keys=False))
 
-    def snakemake(self, *args: str, check: bool = True, timeout: float = 1800) -> subprocess.CompletedProcess[str]:
-        """Run Snakemake on this workspace with the repository's Snakefile."""
+    def snakemake(self, *args: str, check: bool = True, timeout: float = 1800,
+                  config: dict[str, Any] | None = None) -> subprocess.CompletedProcess[str]:
+        """Run Snakemake on this workspace with the repository's Snakefile.
+
+        ``config`` (optional) is written to a separate file and used instead of the
+        workspace's own, so a test can try an edited config without changing it.
+        """
+        config_path = self.config_path
+        if config is not None:
+            config_path = self.workdir / "edited_config.yaml"
+            config_path.write_text(yaml.safe_dump(config, sort_keys=False))
         env = dict(os.environ)
         env["PYTHONPATH"] = str(REPO) + os.pathsep + env.get("PYTHONPATH", "")
         cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "Snakefile"), "--directory",
-               str(self.workdir), "--configfile", str(self.config_path), *args]
+               str(self.workdir), "--configfile", str(config_path), *args]
         proc = subprocess.run(cmd, capture_output=True, text=True, env=env, timeout=timeout)
         if check and proc.returncode != 0:
             raise AssertionError(f"snakemake failed ({proc.returncode}):\n{proc.stdout[-4000:]}\n{proc.stderr[-6000:]}")
