@@ -259,14 +259,25 @@ def group_permutation_params(wildcards):
 
 # ---------------------------------------------------------------- resources
 def fit_mem_mb(wildcards, attempt):
-    """Memory for a fit job from the BOLD header: in-mask float32 data x 2.5 plus 500 MB, more on retry."""
+    """Memory (MB) for a fit job from the BOLD header's voxel and volume counts.
+
+    In-mask float32 data is at most the whole 4D array (4 bytes a value); the fit keeps it
+    once plus chunk work space, so 1.5x that plus 500 MB, doubled on each retry. Only this
+    job's header is read, when the job is scheduled (a cluster job re-parses the Snakefile
+    but evaluates resources of its own job only). An unreadable file falls back to its size;
+    the fit job itself then reports the problem.
+    """
     import nibabel as nib
 
-    shape = nib.load(bold_file(wildcards)).shape
-    n_values = 1
-    for n in shape:
-        n_values *= int(n)
-    return int(500 + 2.5 * 4 * n_values / 2**20) * attempt
+    path = bold_file(wildcards)
+    try:
+        n_values = 1
+        for n in nib.load(path).shape:
+            n_values *= int(n)
+        data_mb = 4 * n_values / 2**20
+    except Exception:  # the fit job raises the user-facing error for a bad file
+        data_mb = 4 * os.path.getsize(path) / 2**20 if os.path.exists(path) else 0
+    return int(500 + 1.5 * data_mb) * 2 ** (attempt - 1)
 
 
 # ---------------------------------------------------------------- targets
