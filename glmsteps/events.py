@@ -184,6 +184,37 @@ def _parse_modulators(table: pd.DataFrame, source: str,
     return out
 
 
+def looks_like_milliseconds(onset_s: npt.ArrayLike, scan_end_s: float) -> bool:
+    """True when onsets fit the scan only after dividing them by 1000.
+
+    Parameters
+    ----------
+    onset_s : array_like, shape (n_events,)
+        Onsets as found in the file (meant to be seconds).
+    scan_end_s : float
+        End of the scan in seconds.
+
+    Returns
+    -------
+    bool
+
+    Notes
+    -----
+    Milliseconds are suspected when ``max(onset) / 1000 < scan_end_s``,
+    ``max(onset) >= 10 * scan_end_s`` and at least half of the onsets are at
+    or after ``scan_end_s``. The last two conditions keep a small overshoot in
+    seconds (a truncated run, a wrong TR) from being mistaken for milliseconds:
+    in milliseconds every event after the first ``scan_end_s / 1000`` seconds
+    is past the end.
+    """
+    onset = np.asarray(onset_s, dtype=np.float64)
+    if onset.size == 0:
+        return False
+    largest = float(onset.max())
+    return (largest / 1000.0 < scan_end_s and largest >= 10.0 * scan_end_s
+            and np.mean(onset >= scan_end_s) >= 0.5)
+
+
 def _check_scan_end(onset: npt.NDArray[np.float64], source: str, scan_end_s: float, n_volumes: int,
                     repetition_time_s: float) -> None:
     """Onsets must fall inside the scan; onsets in milliseconds get their own hint."""
@@ -192,7 +223,7 @@ def _check_scan_end(onset: npt.NDArray[np.float64], source: str, scan_end_s: flo
         return
     scan = f"the scan ends at {scan_end_s:g} s ({n_volumes} volumes x TR {repetition_time_s:g} s)"
     i_max = int(np.argmax(onset))
-    if onset[i_max] / 1000.0 < scan_end_s:
+    if looks_like_milliseconds(onset, scan_end_s):
         raise EventsError(f"{source}: {format_row(i_max)}, column 'onset': found {onset[i_max]:g}, but {scan}; "
                           "the onsets look like milliseconds: divide onset and duration by 1000")
     i = int(np.flatnonzero(late)[0])
@@ -348,8 +379,8 @@ def validate_events(table: pd.DataFrame, *, source: str, n_volumes: int, repetit
     -----
     The scan ends at ``scan_end_s = n_volumes * repetition_time_s``; onsets
     and durations are in seconds as in the BIDS specification (task events).
-    Onsets look like milliseconds when ``max(onset) >= scan_end_s`` but
-    ``max(onset) / 1000 < scan_end_s``.
+    Onsets look like milliseconds when ``max(onset) / 1000 < scan_end_s``
+    although most onsets are past the end (see :func:`looks_like_milliseconds`).
     """
     _check_arguments(n_volumes, repetition_time_s, condition_column, modulator_columns)
     _check_columns(table, source, condition_column, modulator_columns)
