@@ -219,8 +219,8 @@ def censor_table() -> pd.DataFrame:
 def test_prepare_confounds_full_pipeline():
     table = censor_table()
     result = prepare_confounds(table, source=SOURCE, **base_settings(
-        columns=["trans_*", "rot_*"], derivatives=True, squares=True, demean=True, censor_column="framewise_displacement",
-        censor_threshold=0.5, volumes_before=1, volumes_after=1, drop_initial_volumes=1, max_censored_fraction=0.8))
+        columns=["trans_*", "rot_*"], derivatives=True, squares=True, demean=True,
+        censor_column="framewise_displacement", censor_threshold=0.5, volumes_before=1, volumes_after=1, drop_initial_volumes=1, max_censored_fraction=0.8))
     assert isinstance(result, ConfoundSet)
     # worked by hand: FD 0.9 at volume 3 -> 2..4; 0.7 at volume 9 -> 8..10
     np.testing.assert_array_equal(np.flatnonzero(result.censored), [2, 3, 4, 8, 9, 10])

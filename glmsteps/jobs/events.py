@@ -77,6 +77,9 @@ def _check_params(params: Mapping[str, Any]) -> None:
     missing = [k for k in PARAM_KEYS if k not in params]
     if missing:
         raise ConfigError(f"step {STEP}: params lack {missing}; the rule must pass exactly {list(PARAM_KEYS)}")
+    unknown = sorted(set(params) - set(PARAM_KEYS))
+    if unknown:
+        raise ConfigError(f"step {STEP}: unknown params {unknown}; the rule must pass exactly {list(PARAM_KEYS)}")
     if params["modulators"] is None or isinstance(params["modulators"], str) or \
             not isinstance(params["modulators"], (list, tuple)):
         raise ConfigError(f"config modulators is {params['modulators']!r}; expected a list of column names "
