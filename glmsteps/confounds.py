@@ -162,7 +162,7 @@ def backward_difference(values: npt.ArrayLike) -> npt.NDArray[np.float64]:
     return d
 
 
-def expand_confounds(table: pd.DataFrame, *, derivatives: bool, squares: bool) -> pd.DataFrame:
+def expand_confounds(table: pd.DataFrame, *, derivatives: bool, squares: bool, source: str = "") -> pd.DataFrame:
     """Add temporal derivatives and squares of confound columns.
 
     Parameters
@@ -173,6 +173,8 @@ def expand_confounds(table: pd.DataFrame, *, derivatives: bool, squares: bool) -
         Add ``<name>_diff`` (backward difference, first row 0).
     squares : bool
         Add ``<name>_sq`` and, with ``derivatives``, ``<name>_diff_sq``.
+    source : str
+        File the table came from (named in messages when given).
 
     Returns
     -------
@@ -205,7 +207,7 @@ def expand_confounds(table: pd.DataFrame, *, derivatives: bool, squares: bool) -
     seen: set[str] = set()
     for n in all_names:
         if n in seen:
-            raise ConfoundsError(f"expanded confound column '{n}' clashes with a selected column of the same name; "
+            raise ConfoundsError(f"{source + ': ' if source else ''}expanded confound column '{n}' clashes with a selected column of the same name; "
                                  "leave that column out of confounds.columns or turn off the expansion")
         seen.add(n)
     data = np.hstack([values for _, values in blocks]) if names else np.zeros((len(table), 0))
@@ -478,7 +480,7 @@ def prepare_confounds(table: pd.DataFrame, *, source: str, columns: Sequence[str
     if censor_column is not None:
         measure = clean_confound_values(table[[censor_column]], source=source,
                                         derivative_columns=[censor_column])[censor_column].to_numpy()
-    expanded = expand_confounds(values, derivatives=bool(derivatives), squares=bool(squares))
+    expanded = expand_confounds(values, derivatives=bool(derivatives), squares=bool(squares), source=source)
 
     n_volumes = len(table)
     n_dropped = int(drop_initial_volumes)

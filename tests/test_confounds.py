@@ -77,8 +77,9 @@ def test_backward_difference_matches_numpy_diff():
 
 def test_expansion_name_clash_is_an_error():
     table = pd.DataFrame({"a": [0.0, 1.0], "a_diff": [0.0, 1.0]})
-    with pytest.raises(ConfoundsError, match="'a_diff'"):
-        expand_confounds(table, derivatives=True, squares=False)
+    with pytest.raises(ConfoundsError, match="'a_diff'") as info:
+        expand_confounds(table, derivatives=True, squares=False, source=SOURCE)
+    assert str(info.value).startswith(SOURCE + ":")
 
 
 # --------------------------------------------------------------------------- selection
