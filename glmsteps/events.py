@@ -1,0 +1,457 @@
+"""Events-table validation: a BIDS-style events table in, a clean table and a summary out.
+
+Pure module: it takes a :class:`pandas.DataFrame` (read by
+:func:`glmsteps.fileio.read_tsv`, so BIDS ``n/a`` cells are already NaN) and
+never opens a file. ``source`` is only used to name the file in messages.
+
+Row numbers in messages are 1-based *data* rows, as a reader counts them in
+the TSV below its header line (data row 1 is the second line of the file).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+
+from .errors import ConfigError, DataError, EventsError, GlmstepsWarning
+
+#: Columns of the cleaned table, before the modulator columns.
+CLEAN_COLUMNS: tuple[str, ...] = ("onset", "duration", "condition")
+#: How many row numbers a warning lists before it abbreviates.
+_MAX_LISTED_ROWS = 10
+
+
+def format_row(index: int) -> str:
+    """Name a table row as the user sees it in the TSV.
+
+    Parameters
+    ----------
+    index : int
+        0-based position of the row in the DataFrame.
+
+    Returns
+    -------
+    str
+        ``"data row <index + 1> (1-based, header line not counted)"``.
+    """
+    return f"data row {index + 1} (1-based, header line not counted)"
+
+
+def _list_rows(indices: Sequence[int]) -> str:
+    """1-based data-row numbers as a short comma list (abbreviated after 10)."""
+    shown = [str(i + 1) for i in indices[:_MAX_LISTED_ROWS]]
+    more = len(indices) - len(shown)
+    return ", ".join(shown) + (f" and {more} more" if more > 0 else "")
+
+
+def _cell(value: Any) -> str:
+    """A table cell as quoted in a message (``n/a`` for missing)."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "n/a"
+    return repr(value) if isinstance(value, str) else str(value)
+
+
+def _is_missing(value: Any) -> bool:
+    """True for NaN/None cells and blank strings."""
+    if value is None:
+        return True
+    if isinstance(value, str):
+        return value.strip() == ""
+    try:
+        return bool(pd.isna(value))
+    except (TypeError, ValueError):
+        return False
+
+
+def _numeric_column(table: pd.DataFrame, column: str) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.bool_],
+                                                              npt.NDArray[np.bool_]]:
+    """Parse one column as float64.
+
+    Returns
+    -------
+    values : ndarray, shape (n_rows,), float64
+        Parsed values (NaN where missing or not a number).
+    missing : ndarray of bool, shape (n_rows,)
+        Cells that were empty / ``n/a``.
+    non_numeric : ndarray of bool, shape (n_rows,)
+        Cells that hold text that is not a number.
+    """
+    raw = table[column]
+    missing = np.array([_is_missing(v) for v in raw], dtype=bool)
+    values = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+    non_numeric = np.isnan(values) & ~missing
+    return values, missing, non_numeric
+
+
+def _check_arguments(n_volumes: int, repetition_time_s: float, condition_column: str,
+                     modulator_columns: Sequence[str]) -> None:
+    """Validate the settings passed to :func:`validate_events`."""
+    if isinstance(n_volumes, bool) or not isinstance(n_volumes, (int, np.integer)) or n_volumes < 1:
+        raise DataError(f"the BOLD series has {n_volumes!r} volumes; expected a positive whole number of volumes")
+    if (isinstance(repetition_time_s, bool) or not isinstance(repetition_time_s, (int, float, np.floating))
+            or not math.isfinite(repetition_time_s) or repetition_time_s <= 0):
+        raise ConfigError(f"config repetition_time_s is {repetition_time_s!r}; expected a positive number of seconds")
+    if not isinstance(condition_column, str) or not condition_column:
+        raise ConfigError(f"config condition_column is {condition_column!r}; expected the name of an events column")
+    if isinstance(modulator_columns, str):
+        raise ConfigError(f"config modulators is the string {modulator_columns!r}; expected a list of column names")
+    seen: set[str] = set()
+    for name in modulator_columns:
+        if not isinstance(name, str) or not name:
+            raise ConfigError(f"config modulators holds {name!r}; expected column names (text)")
+        if name in CLEAN_COLUMNS:
+            raise ConfigError(f"config modulators names {name!r}, which is also a column of the cleaned events table; "
+                              f"copy it to a column with another name (e.g. '{name}_value') and use that")
+        if name in seen:
+            raise ConfigError(f"config modulators lists {name!r} twice; list each modulator column once")
+        seen.add(name)
+
+
+def _check_columns(table: pd.DataFrame, source: str, condition_column: str,
+                   modulator_columns: Sequence[str]) -> None:
+    """Required and modulator columns must be present."""
+    present = [str(c) for c in table.columns]
+    for column, what in [("onset", "required"), ("duration", "required"), (condition_column, "condition")] + \
+            [(m, "modulator") for m in modulator_columns]:
+        if column not in table.columns:
+            fix = {"required": f"add a '{column}' column (seconds)",
+                   "condition": "add it or set condition_column to the column holding the condition names",
+                   "modulator": "add it or remove it from modulators"}[what]
+            raise EventsError(f"{source}: missing {what} column '{column}'; columns present: {present}; {fix}")
+    if len(table) == 0:
+        raise EventsError(f"{source}: the events table has no data rows; add the run's events "
+                          "(one row per event with onset, duration and condition)")
+
+
+def _parse_onsets(table: pd.DataFrame, source: str) -> npt.NDArray[np.float64]:
+    onset, missing, non_numeric = _numeric_column(table, "onset")
+    for i in range(len(onset)):
+        if missing[i] or non_numeric[i] or not math.isfinite(onset[i]):
+            found = _cell(table["onset"].iloc[i])
+            raise EventsError(f"{source}: {format_row(i)}, column 'onset': found {found}, expected a finite number "
+                              "of seconds from the first volume; fill in the onset or delete the row")
+    return onset
+
+
+def _parse_durations(table: pd.DataFrame, source: str) -> npt.NDArray[np.float64]:
+    duration, missing, non_numeric = _numeric_column(table, "duration")
+    for i in range(len(duration)):
+        if non_numeric[i] or (not missing[i] and not math.isfinite(duration[i])):
+            found = _cell(table["duration"].iloc[i])
+            raise EventsError(f"{source}: {format_row(i)}, column 'duration': found {found}, expected a finite number "
+                              "of seconds (0 or n/a for an impulse); fix the value")
+        if not missing[i] and duration[i] < 0:
+            raise EventsError(f"{source}: {format_row(i)}, column 'duration': found {duration[i]:g}, expected a "
+                              "duration >= 0 s; fix the value (0 for an impulse)")
+    if missing.any():
+        rows = np.flatnonzero(missing).tolist()
+        warnings.warn(f"{source}: column 'duration' is n/a in data rows {_list_rows(rows)} (1-based); treated as "
+                      "0 s (impulse events); write 0 in the file to make this explicit", GlmstepsWarning, stacklevel=2)
+        duration = np.where(missing, 0.0, duration)
+    return duration
+
+
+def _parse_conditions(table: pd.DataFrame, source: str, condition_column: str) -> list[str]:
+    names = []
+    for i, value in enumerate(table[condition_column]):
+        if _is_missing(value):
+            raise EventsError(f"{source}: {format_row(i)}, column '{condition_column}': found {_cell(value)}, "
+                              "expected a condition name; fill it in or delete the row")
+        if isinstance(value, (float, np.floating)) and float(value).is_integer():
+            value = int(value)
+        names.append(str(value))
+    return names
+
+
+def _parse_modulators(table: pd.DataFrame, source: str,
+                      modulator_columns: Sequence[str]) -> dict[str, npt.NDArray[np.float64]]:
+    out = {}
+    for column in modulator_columns:
+        values, missing, non_numeric = _numeric_column(table, column)
+        bad = missing | non_numeric | ~np.isfinite(values)
+        if bad.any():
+            i = int(np.flatnonzero(bad)[0])
+            raise EventsError(f"{source}: {format_row(i)}, modulator column '{column}': found "
+                              f"{_cell(table[column].iloc[i])}, expected a finite number on every row; "
+                              "fill it in (e.g. with the condition mean) or remove the column from modulators")
+        out[column] = values
+    return out
+
+
+def looks_like_milliseconds(onset_s: npt.ArrayLike, scan_end_s: float) -> bool:
+    """True when onsets fit the scan only after dividing them by 1000.
+
+    Parameters
+    ----------
+    onset_s : array_like, shape (n_events,)
+        Onsets as found in the file (meant to be seconds).
+    scan_end_s : float
+        End of the scan in seconds.
+
+    Returns
+    -------
+    bool
+
+    Notes
+    -----
+    Milliseconds are suspected when ``max(onset) / 1000 < scan_end_s``,
+    ``max(onset) >= 10 * scan_end_s`` and at least half of the onsets are at
+    or after ``scan_end_s``. The last two conditions keep a small overshoot in
+    seconds (a truncated run, a wrong TR) from being mistaken for milliseconds:
+    in milliseconds every event after the first ``scan_end_s / 1000`` seconds
+    is past the end.
+    """
+    onset = np.asarray(onset_s, dtype=np.float64)
+    if onset.size == 0:
+        return False
+    largest = float(onset.max())
+    return (largest / 1000.0 < scan_end_s and largest >= 10.0 * scan_end_s
+            and np.mean(onset >= scan_end_s) >= 0.5)
+
+
+def _check_scan_end(onset: npt.NDArray[np.float64], source: str, scan_end_s: float, n_volumes: int,
+                    repetition_time_s: float) -> None:
+    """Onsets must fall inside the scan; onsets in milliseconds get their own hint."""
+    late = onset >= scan_end_s
+    if not late.any():
+        return
+    scan = f"the scan ends at {scan_end_s:g} s ({n_volumes} volumes x TR {repetition_time_s:g} s)"
+    i_max = int(np.argmax(onset))
+    if looks_like_milliseconds(onset, scan_end_s):
+        raise EventsError(f"{source}: {format_row(i_max)}, column 'onset': found {onset[i_max]:g}, but {scan}; "
+                          "the onsets look like milliseconds: divide onset and duration by 1000")
+    i = int(np.flatnonzero(late)[0])
+    raise EventsError(f"{source}: {format_row(i)}, column 'onset': found {onset[i]:g} s, at or after the end of "
+                      f"the scan ({scan}); check that the events file belongs to this run and that "
+                      "repetition_time_s is right")
+
+
+def clip_durations(onset_s: npt.ArrayLike, duration_s: npt.ArrayLike,
+                   scan_end_s: float) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.bool_]]:
+    """Shorten events so that none extends past the end of the scan.
+
+    Parameters
+    ----------
+    onset_s : array_like, shape (n_events,)
+        Event onsets in seconds from the first volume.
+    duration_s : array_like, shape (n_events,)
+        Event durations in seconds (>= 0).
+    scan_end_s : float
+        End of the scan in seconds (``n_volumes * repetition_time_s``).
+
+    Returns
+    -------
+    duration_s : ndarray, shape (n_events,), float64
+        Durations with ``onset + duration <= scan_end_s``.
+    clipped : ndarray of bool, shape (n_events,)
+        Events whose duration was shortened.
+
+    Notes
+    -----
+    The scan covers ``[0, n_volumes * TR)`` seconds, the last volume starting
+    at ``(n_volumes - 1) * TR`` (common practice for the frame-time grid). An
+    event ending after ``scan_end_s`` gets ``duration = scan_end_s - onset``.
+    """
+    onset = np.asarray(onset_s, dtype=np.float64)
+    duration = np.asarray(duration_s, dtype=np.float64)
+    clipped = onset + duration > scan_end_s
+    return np.where(clipped, scan_end_s - onset, duration), clipped
+
+
+def find_overlaps(onset_s: npt.ArrayLike, duration_s: npt.ArrayLike) -> list[tuple[int, int]]:
+    """Pairs of overlapping events within one condition.
+
+    Parameters
+    ----------
+    onset_s : array_like, shape (n_events,)
+        Onsets in seconds, sorted ascending.
+    duration_s : array_like, shape (n_events,)
+        Durations in seconds.
+
+    Returns
+    -------
+    list of (int, int)
+        ``(earlier, later)`` positions: ``later`` starts before an earlier
+        event of the condition has ended, or at the same onset as ``earlier``.
+
+    Notes
+    -----
+    Event ``j`` overlaps when ``onset[j] < max_{k<j}(onset[k] + duration[k])``
+    or ``onset[j] == onset[j-1]`` (two impulses at one time); ``earlier`` is
+    the event holding that running maximum end (or the previous event).
+    """
+    onset = np.asarray(onset_s, dtype=np.float64)
+    end = onset + np.asarray(duration_s, dtype=np.float64)
+    pairs: list[tuple[int, int]] = []
+    holder = 0
+    for j in range(1, len(onset)):
+        if onset[j] < end[holder]:
+            pairs.append((holder, j))
+        elif onset[j] == onset[j - 1]:
+            pairs.append((j - 1, j))
+        if end[j] > end[holder]:
+            holder = j
+    return pairs
+
+
+def summarise_events(clean: pd.DataFrame, *, scan_end_s: float, n_clipped: int) -> dict[str, Any]:
+    """Counts and total durations per condition of a cleaned events table.
+
+    Parameters
+    ----------
+    clean : DataFrame, shape (n_events, 3 + n_modulators)
+        Output table of :func:`validate_events`.
+    scan_end_s : float
+        End of the scan in seconds.
+    n_clipped : int
+        Number of events whose duration was clipped.
+
+    Returns
+    -------
+    dict
+        ``{"n_events", "conditions": {name: {"count", "total_duration_s"}},
+        "scan_end_s", "clipped"}``.
+    """
+    conditions = {}
+    for name in sorted(set(clean["condition"])):
+        rows = clean["condition"] == name
+        conditions[name] = {"count": int(rows.sum()),
+                            "total_duration_s": float(clean.loc[rows, "duration"].sum())}
+    return {"n_events": int(len(clean)), "conditions": conditions, "scan_end_s": float(scan_end_s),
+            "clipped": int(n_clipped)}
+
+
+def validate_events(table: pd.DataFrame, *, source: str, n_volumes: int, repetition_time_s: float,
+                    condition_column: str = "trial_type",
+                    modulator_columns: Sequence[str] = ()) -> tuple[pd.DataFrame, dict[str, Any]]:
+    """Check an events table against its scan and return a clean copy.
+
+    Parameters
+    ----------
+    table : DataFrame, shape (n_events, n_columns)
+        Events as read by :func:`glmsteps.fileio.read_tsv` (``n/a`` is NaN).
+        Needs ``onset`` and ``duration`` (seconds from the first volume), the
+        condition column and every modulator column.
+    source : str
+        File the table came from; named in every message.
+    n_volumes : int
+        Number of volumes of the run's BOLD series.
+    repetition_time_s : float
+        Repetition time in seconds.
+    condition_column : str
+        Column holding the condition names.
+    modulator_columns : sequence of str
+        Numeric columns kept as parametric modulators.
+
+    Returns
+    -------
+    clean : DataFrame, shape (n_events, 3 + n_modulators)
+        Columns ``onset``, ``duration`` (float64, s), ``condition`` (str),
+        then the modulator columns (float64), sorted by onset (ties keep file
+        order), index reset.
+    summary : dict
+        ``{"n_events", "conditions": {name: {"count", "total_duration_s"}},
+        "scan_end_s", "clipped"}``.
+
+    Raises
+    ------
+    EventsError
+        Missing column; missing, non-numeric or non-finite onset; non-numeric
+        or negative duration; missing condition; onset at or after the end of
+        the scan (with a hint when onsets look like milliseconds); missing or
+        non-numeric modulator value.
+    ConfigError, DataError
+        Invalid settings or volume count.
+
+    Warns
+    -----
+    GlmstepsWarning
+        ``n/a`` durations (taken as 0 s, impulses); events extending past the
+        end of the scan (clipped); overlapping events of one condition.
+
+    Notes
+    -----
+    The scan ends at ``scan_end_s = n_volumes * repetition_time_s``; onsets
+    and durations are in seconds as in the BIDS specification (task events).
+    Onsets look like milliseconds when ``max(onset) / 1000 < scan_end_s``
+    although most onsets are past the end (see :func:`looks_like_milliseconds`).
+    """
+    _check_arguments(n_volumes, repetition_time_s, condition_column, modulator_columns)
+    _check_columns(table, source, condition_column, modulator_columns)
+    scan_end_s = float(n_volumes) * float(repetition_time_s)
+
+    onset = _parse_onsets(table, source)
+    duration = _parse_durations(table, source)
+    conditions = _parse_conditions(table, source, condition_column)
+    modulators = _parse_modulators(table, source, modulator_columns)
+    _check_scan_end(onset, source, scan_end_s, n_volumes, repetition_time_s)
+
+    duration, clipped = clip_durations(onset, duration, scan_end_s)
+    if clipped.any():
+        rows = np.flatnonzero(clipped).tolist()
+        warnings.warn(f"{source}: {len(rows)} event(s) extend past the end of the scan at {scan_end_s:g} s "
+                      f"(data rows {_list_rows(rows)}, 1-based); their durations were clipped to the scan end",
+                      GlmstepsWarning, stacklevel=2)
+
+    order = np.argsort(onset, kind="stable")
+    names = np.asarray(conditions, dtype=object)
+    for name in sorted(set(conditions)):
+        rows = order[names[order] == name]
+        pairs = find_overlaps(onset[rows], duration[rows])
+        if pairs:
+            listed = ", ".join(f"{rows[a] + 1} and {rows[b] + 1}" for a, b in pairs[:_MAX_LISTED_ROWS])
+            more = len(pairs) - min(len(pairs), _MAX_LISTED_ROWS)
+            warnings.warn(f"{source}: condition '{name}' has overlapping events in data rows {listed}"
+                          f"{f' and {more} more pairs' if more else ''} (1-based); their regressors add up where "
+                          "they overlap; merge or shorten them if that is not intended",
+                          GlmstepsWarning, stacklevel=2)
+
+    clean = pd.DataFrame({"onset": onset[order], "duration": duration[order],
+                          "condition": pd.Series(names[order], dtype=object)})
+    for column, values in modulators.items():
+        clean[column] = values[order]
+    summary = summarise_events(clean, scan_end_s=scan_end_s, n_clipped=int(clipped.sum()))
+    return clean, summary
+
+
+def check_conditions_present(conditions_by_run: Mapping[str, set[str]],
+                             needed: Mapping[str, set[str]]) -> dict[str, dict[str, list[str]]]:
+    """Find, for each contrast, the runs that lack a condition it needs.
+
+    Parameters
+    ----------
+    conditions_by_run : mapping of str to set of str
+        Run identifier (e.g. ``sub-01/task-x_run-1``) -> conditions in its events.
+    needed : mapping of str to set of str
+        Contrast name -> conditions its weights name.
+
+    Returns
+    -------
+    dict of str to dict of str to list of str
+        Contrast -> {run -> sorted conditions absent from that run}, only
+        runs with something absent; a contrast that every run supports maps
+        to ``{}``. Later steps mark the contrast non-estimable in those runs.
+
+    Raises
+    ------
+    EventsError
+        A condition a contrast needs appears in no run at all (names the
+        contrast, the condition and the conditions that do exist).
+    """
+    existing = set().union(*conditions_by_run.values()) if conditions_by_run else set()
+    result: dict[str, dict[str, list[str]]] = {}
+    for contrast, wanted in needed.items():
+        for condition in sorted(wanted):
+            if condition not in existing:
+                raise EventsError(f"contrast '{contrast}' needs condition '{condition}', which appears in no run's "
+                                  f"events; conditions present: {sorted(existing)}; fix the contrast weights or "
+                                  "the condition_column setting")
+        absent = {run: sorted(set(wanted) - set(present)) for run, present in conditions_by_run.items()}
+        result[contrast] = {run: missing for run, missing in sorted(absent.items()) if missing}
+    return result
