@@ -197,6 +197,10 @@ def convolve_events(onsets_s: npt.ArrayLike, durations_s: npt.ArrayLike, amplitu
     out = np.empty((ft.size, k2.shape[1]), dtype=np.float64)
     for j in range(k2.shape[1]):
         response = fftconvolve(stim, k2[:, j])[:n_grid] * dt
+        # FFT round-off leaves ~1e-17 where the exact result is 0; clear it so that silent stretches
+        # (and regressors of events outside the scan) stay exactly zero.
+        noise = 1e-12 * np.abs(stim).sum() * dt * np.abs(k2[:, j]).max()
+        response[np.abs(response) <= noise] = 0.0
         out[:, j] = np.interp(ft, grid_t, response)
     return out[:, 0] if squeeze else out
 
