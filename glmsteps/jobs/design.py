@@ -198,7 +198,9 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
         "frame_times_s": design.frame_times_s.tolist(), "diagnostics": diagnostics, "excluded": excluded,
         "warnings": list(seen), "provenance": record,
     }
-    title = " ".join(f"{k}-{v}" for k, v in wildcards.items() if v) or "design matrix"
+    prefixes = {"subject": "sub", "session": "ses"}
+    title = " ".join(f"{prefixes.get(k, k)}-{v}" if k != "run_id" else str(v)
+                     for k, v in wildcards.items() if v) or "design matrix"
     corr = np.array([[np.nan if v is None else v for v in row] for row in diagnostics["correlation"]["values"]],
                     dtype=np.float64).reshape(len(design.names), len(design.names))
 
