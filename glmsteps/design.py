@@ -147,9 +147,12 @@ def convolve_events(onsets_s: npt.ArrayLike, durations_s: npt.ArrayLike, amplitu
     that its area and centre are exact. Then r(t_m) = sum_i s_i h(t_m - t_i) dt
     (discrete convolution), and the regressor is r linearly interpolated at
     the frame times. Both constructions are second-order accurate in dt, so
-    the result changes by O(dt^2) when the grid is refined (common practice:
-    oversampled convolution, e.g. Henson & Friston, "Convolution models for
-    fMRI", in Statistical Parametric Mapping, 2007).
+    the result changes by O(dt^2) when the grid is refined. The linear
+    convolution model of the BOLD response is that of Boynton, Engel, Glover &
+    Heeger (1996), "Linear systems analysis of functional magnetic resonance
+    imaging in human V1", J. Neurosci. 16:4207-4221 (from memory);
+    oversampling the stimulus before sampling at the frame times is common
+    practice.
     """
     dt = _check_dt(dt_s)
     onsets = np.atleast_1d(np.asarray(onsets_s, dtype=np.float64))
@@ -685,14 +688,19 @@ def contrast_efficiency(X: npt.ArrayLike, C: npt.ArrayLike) -> float:
     Efficiency as in Friston, Josephs, Zarahn, Holmes, Rouquette & Poline
     (2000), "To smooth or not to smooth?", NeuroImage 12:196-208 (from
     memory). pinv(X'X) = pinv(X) pinv(X)', so the trace is the squared
-    Frobenius norm of C pinv(X) and X'X is never formed.
+    Frobenius norm of C pinv(X) and X'X is never formed. The value is only
+    meaningful for estimable contrasts (see :func:`is_estimable`).
     """
     X = np.asarray(X, dtype=np.float64)
     C2 = np.atleast_2d(np.asarray(C, dtype=np.float64))
     if C2.shape[1] != X.shape[1]:
         raise DesignError(f"contrast has {C2.shape[1]} weights but the design has {X.shape[1]} columns")
     M = C2 @ _pinv(X)
-    return float(1.0 / np.sum(M * M))
+    trace = float(np.sum(M * M))
+    if trace <= 0:
+        raise DesignError("contrast weights are all zero on the estimable part of the design; "
+                          "give a non-zero, estimable contrast")
+    return 1.0 / trace
 
 
 def is_estimable(X: npt.ArrayLike, C: npt.ArrayLike, tol: float = 1e-6) -> bool:

@@ -17,7 +17,8 @@ impulse of unit area gives a response whose area is 1. The derivative kernels
 are finite differences of the *same* normalised function (one shared
 constant), so their integral is close to 0. FIR kernels are boxcars of height 1
 and are not normalised: a unit-area impulse gives 1 in every volume whose
-delay after the onset falls into that bin.
+delay after the onset falls inside that bin (a fraction within one time step
+of a bin edge).
 """
 
 from __future__ import annotations

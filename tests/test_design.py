@@ -361,3 +361,11 @@ def test_is_estimable_against_null_space() -> None:
         assert gd.is_estimable(X, c) is expected
     assert gd.is_estimable(X, np.array([[1.0, 0.0, 1.0, 0.0], [0.0, 0.0, 0.0, 1.0]]))
     assert not gd.is_estimable(X, np.array([[1.0, 0.0, 1.0, 0.0], [1.0, 0.0, 0.0, 0.0]]))
+
+
+def test_contrast_efficiency_rejects_all_zero_contrast() -> None:
+    X = np.column_stack([np.arange(10.0), np.ones(10)])
+    with pytest.raises(DesignError, match="all zero"):
+        gd.contrast_efficiency(X, [0.0, 0.0])
+    with pytest.raises(DesignError, match="3 weights"):
+        gd.contrast_efficiency(X, [1.0, 0.0, 0.0])

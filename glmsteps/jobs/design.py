@@ -189,7 +189,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
                                   conditions=settings["conditions"], modulators=settings["modulators"])
             diagnostics = design_diagnostics(design, allow_rank_deficient=excluded)
         except DesignError as exc:
-            raise DesignError(f"{inputs['events']}: {exc}") from None
+            raise DesignError(f"{inputs['events']} with {inputs['confounds']}: {exc}") from None
     record = provenance.build_record(STEP, params, {k: inputs[k] for k in INPUT_KEYS}, warnings_seen=seen,
                                      excluded=excluded)
     summary = {
