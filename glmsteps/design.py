@@ -457,8 +457,6 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Hrf
                 warnings.warn(f"spike column {name!r} is zero on every modelled volume (its volume was dropped); "
                               "it is left out of the design", GlmstepsWarning, stacklevel=2)
                 continue
-            if str(name) in names or str(name) == "intercept" or str(name).startswith("drift_"):
-                raise DesignError(f"confounds column {name!r} clashes with a design column name; rename it")
             cols.append(values)
             names.append(str(name))
             roles.append("spike" if is_spike else "confound")
@@ -477,6 +475,12 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Hrf
         roles.append("drift")
         conds.append("")
         basis.append("")
+    seen: set[str] = set()
+    for name in names:
+        if name in seen or name == "intercept":
+            raise DesignError(f"design column name {name!r} occurs twice (a condition, modulator or confound "
+                              "shares a name); rename the condition or the confound column")
+        seen.add(name)
     cols.append(np.ones(n))
     names.append("intercept")
     roles.append("intercept")

@@ -253,6 +253,8 @@ def test_build_design_user_errors() -> None:
         gd.build_design(small_events(), ft, confounds=bad)
     with pytest.raises(DesignError, match="rows"):
         gd.build_design(small_events(), ft, confounds=pd.DataFrame({"a": np.zeros(10)}))
+    with pytest.raises(DesignError, match="'go' occurs twice"):
+        gd.build_design(small_events(), ft, confounds=pd.DataFrame({"go": np.arange(90.0)}))
 
 
 def test_fir_design_columns() -> None:
