@@ -5,7 +5,9 @@ Pure maths: tables and arrays in, arrays out, no file access.
 Column conventions (see DEVELOPERS.md): a condition's main regressor carries
 the condition's name; other basis columns are ``<condition>__derivative``,
 ``<condition>__dispersion`` and ``<condition>__fir<k>``; parametric modulators
-``<condition>__x_<column>``; drifts ``drift_<k>``; confounds keep their names
+``<condition>__x_<column>``; drifts ``drift_<k>`` with k written as two
+digits from 01 (k is the cosine frequency index or the polynomial degree);
+confounds keep their names
 (``spike_*`` columns get the role ``spike``); one ``intercept``. Column order:
 conditions (each with its basis columns then its modulators), confounds in
 table order, drifts, intercept.
