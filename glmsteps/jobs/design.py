@@ -1,0 +1,215 @@
+"""Step ``build_design``: the design matrix of one run, its diagnostics and figures.
+
+Inputs
+    ``events`` (clean events TSV: onset, duration, condition, modulator columns),
+    ``confounds`` (TSV, one row per acquired volume: selected confound and
+    ``spike_*`` columns), ``confounds_summary`` (JSON with ``n_volumes``,
+    ``drop_initial_volumes``, ``excluded``).
+Params
+    ``hrf``, ``fir_bins``, ``fir_bin_width_s``, ``time_resolution_s``,
+    ``drift_model``, ``cutoff_s``, ``legendre_order``, ``repetition_time_s``,
+    ``slice_time_ref``, ``conditions`` (list, may be empty), ``modulators``
+    (mapping condition -> list of columns).
+Outputs
+    ``design`` (TSV, one column per regressor, one row per kept volume),
+    ``summary`` (JSON, the sidecar of ``design`` and ``figure``),
+    ``figure`` (PNG, the matrix), ``correlation_figure`` (PNG, with its own
+    sidecar).
+
+The first ``drop_initial_volumes`` volumes are not modelled: the design's rows
+start at that volume, but frame times stay absolute (seconds from the start
+of volume 0), so events before it still convolve into the kept rows.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .. import provenance
+from ..design import DRIFT_MODELS, build_design, design_diagnostics, frame_times
+from ..errors import ConfigError, DesignError
+from ..fileio import read_json, read_tsv, write_json, write_tsv
+from ..hrf import HRF_MODELS
+from ..plots.design import plot_correlation_matrix, plot_design_matrix
+
+STEP = "build_design"
+PARAM_KEYS: tuple[str, ...] = ("hrf", "fir_bins", "fir_bin_width_s", "time_resolution_s", "drift_model", "cutoff_s",
+                               "legendre_order", "repetition_time_s", "slice_time_ref", "conditions", "modulators")
+INPUT_KEYS: tuple[str, ...] = ("events", "confounds", "confounds_summary")
+OUTPUT_KEYS: tuple[str, ...] = ("design", "summary", "figure", "correlation_figure")
+
+
+def _number(params: Mapping[str, Any], key: str, *, positive: bool = False) -> float:
+    value = params[key]
+    try:
+        out = float(value)
+    except (TypeError, ValueError):
+        raise ConfigError(f"{STEP} param {key}={value!r} is not a number; set design.{key} to a number") from None
+    if not np.isfinite(out) or (positive and out <= 0):
+        raise ConfigError(f"{STEP} param {key}={value!r} must be a {'positive ' if positive else ''}finite number")
+    return out
+
+
+def check_params(params: Mapping[str, Any]) -> dict[str, Any]:
+    """Validate the step's params up front; return them as plain typed values."""
+    missing = [k for k in PARAM_KEYS if k not in params]
+    if missing:
+        raise ConfigError(f"{STEP}: params {missing} are missing; the rule must pass {list(PARAM_KEYS)}")
+    hrf = params["hrf"]
+    if hrf not in HRF_MODELS:
+        raise ConfigError(f"{STEP}: hrf={hrf!r} is not known; use one of {', '.join(HRF_MODELS)}")
+    drift = params["drift_model"]
+    if drift not in DRIFT_MODELS:
+        raise ConfigError(f"{STEP}: drift_model={drift!r} is not known; use one of {', '.join(DRIFT_MODELS)}")
+    dt = _number(params, "time_resolution_s", positive=True)
+    if dt > 0.1:
+        raise ConfigError(f"{STEP}: time_resolution_s={dt} s is coarser than 0.1 s; set it to 0.1 or finer")
+    out: dict[str, Any] = {"hrf": hrf, "drift_model": drift, "dt_s": dt,
+                           "repetition_time_s": _number(params, "repetition_time_s", positive=True),
+                           "slice_time_ref": _number(params, "slice_time_ref")}
+    if not 0.0 <= out["slice_time_ref"] <= 1.0:
+        raise ConfigError(f"{STEP}: slice_time_ref={params['slice_time_ref']!r} must be between 0 and 1")
+    out["cutoff_s"] = _number(params, "cutoff_s", positive=True) if drift == "cosine" else 128.0
+    order = params["legendre_order"]
+    if drift == "legendre" and (isinstance(order, bool) or not isinstance(order, (int, np.integer)) or order < 1):
+        raise ConfigError(f"{STEP}: legendre_order={order!r} must be a whole number >= 1")
+    out["legendre_order"] = int(order) if drift == "legendre" else 1
+    if hrf == "fir":
+        bins = params["fir_bins"]
+        if isinstance(bins, bool) or not isinstance(bins, (int, np.integer)) or bins < 1:
+            raise ConfigError(f"{STEP}: fir_bins={bins!r} must be a whole number >= 1 for the fir model")
+        out["fir_bins"] = int(bins)
+        out["fir_bin_width_s"] = _number(params, "fir_bin_width_s", positive=True)
+        if out["fir_bin_width_s"] < dt:
+            raise ConfigError(f"{STEP}: fir_bin_width_s={out['fir_bin_width_s']} s is shorter than "
+                              f"time_resolution_s={dt} s; widen the bins")
+    else:
+        out["fir_bins"], out["fir_bin_width_s"] = 0, 0.0
+    conditions = params["conditions"] or []
+    if isinstance(conditions, str) or not all(isinstance(c, str) for c in conditions):
+        raise ConfigError(f"{STEP}: conditions={conditions!r} must be a list of condition names")
+    out["conditions"] = list(conditions)
+    modulators = params["modulators"] or {}
+    if not isinstance(modulators, Mapping) or not all(
+            isinstance(v, (list, tuple)) and all(isinstance(m, str) for m in v) for v in modulators.values()):
+        raise ConfigError(f"{STEP}: modulators={modulators!r} must map each condition to a list of column names")
+    out["modulators"] = {str(k): list(v) for k, v in modulators.items()}
+    return out
+
+
+def read_confounds_summary(path: str | os.PathLike[str]) -> tuple[int, int, bool]:
+    """``n_volumes``, ``drop_initial_volumes`` and ``excluded`` from the confounds summary."""
+    try:
+        data = read_json(path)
+    except (OSError, json.JSONDecodeError) as exc:
+        raise DesignError(f"{path}: cannot read the confounds summary ({exc}); rerun select_confounds") from exc
+    if not isinstance(data, dict):
+        raise DesignError(f"{path}: expected a JSON object, found {type(data).__name__}; rerun select_confounds")
+    for key in ("n_volumes", "drop_initial_volumes", "excluded"):
+        if key not in data:
+            raise DesignError(f"{path}: key {key!r} is missing; expected n_volumes, drop_initial_volumes and "
+                              "excluded; rerun select_confounds")
+    n, drop, excluded = data["n_volumes"], data["drop_initial_volumes"], data["excluded"]
+    for key, value in (("n_volumes", n), ("drop_initial_volumes", drop)):
+        if isinstance(value, bool) or not isinstance(value, int) or value < 0:
+            raise DesignError(f"{path}: {key}={value!r}, expected a whole number >= 0; rerun select_confounds")
+    if drop >= n - 1:
+        raise DesignError(f"{path}: drop_initial_volumes={drop} leaves fewer than 2 of the {n} volumes; "
+                          "lower drop_initial_volumes")
+    if not isinstance(excluded, bool):
+        raise DesignError(f"{path}: excluded={excluded!r}, expected true or false; rerun select_confounds")
+    return n, drop, excluded
+
+
+def read_confounds(path: str | os.PathLike[str], n_volumes: int) -> pd.DataFrame:
+    """Read the selected confounds and check one finite row per acquired volume."""
+    try:
+        table = read_tsv(path)
+    except pd.errors.EmptyDataError:
+        table = pd.DataFrame(index=range(n_volumes))
+    if len(table) != n_volumes:
+        raise DesignError(f"{path}: {len(table)} rows, expected one per volume ({n_volumes}); "
+                          "rerun select_confounds on this run")
+    for name in table.columns:
+        values = pd.to_numeric(table[name], errors="coerce").to_numpy(dtype=np.float64)
+        bad = np.nonzero(~np.isfinite(values))[0]
+        if bad.size:
+            raise DesignError(f"{path}: column {name!r} row {bad[0] + 1} is {table[name].iloc[bad[0]]!r}, expected a "
+                              "finite number; fill missing confound values in select_confounds")
+    return table
+
+
+def read_events(path: str | os.PathLike[str]) -> pd.DataFrame:
+    """Read the clean events table and check its required columns."""
+    try:
+        table = read_tsv(path)
+    except pd.errors.EmptyDataError:
+        raise DesignError(f"{path}: the events file is empty; expected a header onset, duration, condition") from None
+    missing = [c for c in ("onset", "duration", "condition") if c not in table.columns]
+    if missing:
+        raise DesignError(f"{path}: columns {missing} are missing (found {list(table.columns)}); "
+                          "rerun validate_events")
+    for col in ("onset", "duration"):
+        values = pd.to_numeric(table[col], errors="coerce").to_numpy(dtype=np.float64)
+        bad = np.nonzero(~np.isfinite(values))[0]
+        if bad.size:
+            raise DesignError(f"{path}: row {bad[0] + 1} {col} is {table[col].iloc[bad[0]]!r}, expected a number; "
+                              "rerun validate_events")
+    table["condition"] = table["condition"].astype(str)
+    return table
+
+
+def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],
+        wildcards: Mapping[str, str], threads: int = 1) -> None:
+    """Build, check and write the design of one run (see the module docstring)."""
+    for group, keys, given in (("input", INPUT_KEYS, inputs), ("output", OUTPUT_KEYS, outputs)):
+        missing = [k for k in keys if k not in given]
+        if missing:
+            raise ConfigError(f"{STEP}: named {group}(s) {missing} are missing; the rule must name {list(keys)}")
+    settings = check_params(params)
+    n_total, drop, excluded = read_confounds_summary(inputs["confounds_summary"])
+    events = read_events(inputs["events"])
+    confounds = read_confounds(inputs["confounds"], n_total).iloc[drop:].reset_index(drop=True)
+    n_kept = n_total - drop
+    times = frame_times(n_kept, settings["repetition_time_s"], settings["slice_time_ref"], first_volume=drop)
+
+    with provenance.collect_warnings() as seen:
+        try:
+            design = build_design(events, times, hrf=settings["hrf"], dt_s=settings["dt_s"],
+                                  fir_bins=settings["fir_bins"], fir_bin_width_s=settings["fir_bin_width_s"],
+                                  drift_model=settings["drift_model"], cutoff_s=settings["cutoff_s"],
+                                  legendre_order=settings["legendre_order"], confounds=confounds,
+                                  conditions=settings["conditions"], modulators=settings["modulators"])
+            diagnostics = design_diagnostics(design, allow_rank_deficient=excluded)
+        except DesignError as exc:
+            raise DesignError(f"{inputs['events']} with {inputs['confounds']}: {exc}") from None
+    record = provenance.build_record(STEP, params, {k: inputs[k] for k in INPUT_KEYS}, warnings_seen=seen,
+                                     excluded=excluded)
+    summary = {
+        "names": list(design.names), "roles": list(design.roles), "conditions": list(design.conditions),
+        "basis": list(design.basis), "first_volume": drop, "n_volumes": n_kept, "n_volumes_acquired": n_total,
+        "frame_times_s": design.frame_times_s.tolist(), "diagnostics": diagnostics, "excluded": excluded,
+        "warnings": list(seen), "provenance": record,
+    }
+    prefixes = {"subject": "sub", "session": "ses"}
+    title = " ".join(f"{prefixes.get(k, k)}-{v}" if k != "run_id" else str(v)
+                     for k, v in wildcards.items() if v) or "design matrix"
+    corr = np.array([[np.nan if v is None else v for v in row] for row in diagnostics["correlation"]["values"]],
+                    dtype=np.float64).reshape(len(design.names), len(design.names))
+
+    write_json(outputs["summary"], summary)
+    for out in (outputs["design"], outputs["figure"]):
+        if provenance.sidecar_path(out).resolve() != Path(outputs["summary"]).resolve():
+            write_json(provenance.sidecar_path(out), summary)
+    provenance.write_sidecar(outputs["correlation_figure"], record, excluded=excluded,
+                             names=list(design.names), content="regressor correlation matrix of the design")
+    plot_correlation_matrix(design.names, corr, outputs["correlation_figure"], title=f"correlations {title}")
+    plot_design_matrix(design.X, design.names, design.roles, outputs["figure"], title=title, first_volume=drop)
+    write_tsv(outputs["design"], design.to_frame())
