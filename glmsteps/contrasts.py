@@ -505,6 +505,7 @@ def compute_contrast(spec: ContrastSpec, X: npt.NDArray[np.floating], names: Seq
         return ContrastMaps(spec.kind, C, False, check.reason, None, {k: nan.copy() for k in MAP_KEYS[spec.kind]},
                             None, None)
     eff = efficiency(X, C)
+    eff = eff if math.isfinite(eff) else None
     dof_arr = np.asarray(dof, dtype=np.float64)
     dof_med = float(np.median(dof_arr)) if dof_arr.size else None
     if spec.kind == "t":
