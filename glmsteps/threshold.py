@@ -270,7 +270,7 @@ def cluster_table(stat3d: npt.NDArray[np.floating], labels: npt.NDArray[np.integ
                 sub.append((float(stat[tuple(vox)]), xyz))
         centre = apply_affine(affine, idx.astype(np.float64)).mean(axis=0)
         row: dict[str, Any] = {"cluster_id": lab, "size_voxels": int(len(idx)),
-                               "volume_mm3": float(len(idx) * voxel_volume_mm3), "peak_stat": float(stat[peak])}
+                               "volume_mm3": round(float(len(idx) * voxel_volume_mm3), 6), "peak_stat": float(stat[peak])}
         row.update(dict(zip(("peak_x_mm", "peak_y_mm", "peak_z_mm"), map(float, kept_mm[0]))))
         row.update(dict(zip(("centre_x_mm", "centre_y_mm", "centre_z_mm"), map(float, centre))))
         for k in range(1, max_subpeaks + 1):

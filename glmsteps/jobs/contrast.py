@@ -78,8 +78,8 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
             extra.update(excluded=True, estimable=None, efficiency=None, dof=None,
                          reason="run excluded upstream (too many censored volumes)")
             try:
-                C = contrast_matrix(spec, fit.names, fit.conditions, fit.basis)
-                extra["weights"] = _weights(C, fit.names)
+                C = contrast_matrix(spec, list(fit.names), list(fit.conditions), list(fit.basis))
+                extra["weights"] = _weights(C, list(fit.names))
             except ContrastError:
                 extra["weights"] = None
         else:

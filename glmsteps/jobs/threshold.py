@@ -76,8 +76,11 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
         else:
             centre = np.array(z.shape) // 2
         block = _z_block(str(inputs["z"]), wildcards)
-        title = (f"{block.get('contrast', '')} | {setting.name}: {setting.method} | "
-                 + (f"{result.n_clusters} clusters" if result.n_clusters else "no voxel survived"))
+        parts = [f"sub-{block['subject']}" if block.get("subject") else "",
+                 f"contrast {block['contrast']}" if block.get("contrast") else "",
+                 f"threshold {setting.name} ({setting.method})",
+                 f"{result.n_clusters} cluster(s)" if result.n_clusters else "no voxel survived"]
+        title = " | ".join(p for p in parts if p)
         fig = plot_orthogonal_slices(under, thresholded, affine, tuple(int(c) for c in centre), title)
     record = provenance.build_record(STEP, params, {"z": inputs["z"], "p": inputs["p"],
                                                     "underlay": inputs["underlay"]}, warnings_seen=seen)

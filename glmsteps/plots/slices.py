@@ -38,7 +38,7 @@ def plot_orthogonal_slices(underlay3d: npt.NDArray[np.floating], stat3d: npt.NDA
     -----
     Panels show the planes j-k (x fixed), i-k (y fixed) and i-j (z fixed) in
     voxel order; signed maps use the diverging palette centred on 0,
-    one-signed maps the magnitude ramp.
+    positive-only maps the magnitude ramp from 0.
     """
     under = np.nan_to_num(np.asarray(underlay3d, dtype=np.float64), nan=0.0)
     stat = np.asarray(stat3d, dtype=np.float64)
@@ -46,15 +46,11 @@ def plot_orthogonal_slices(underlay3d: npt.NDArray[np.floating], stat3d: npt.NDA
     zooms = np.sqrt((np.asarray(affine, dtype=np.float64)[:3, :3] ** 2).sum(axis=0))
     i, j, k = (int(c) for c in centre_ijk)
     finite = over[np.isfinite(over)]
-    if finite.size and finite.min() < 0 < finite.max():
+    if finite.size and finite.min() < 0:
         vmax = float(np.abs(finite).max())
         cmap, norm = SIGNED_CMAP, colors.TwoSlopeNorm(vcenter=0.0, vmin=-vmax, vmax=vmax)
-    elif finite.size and finite.max() <= 0:
-        cmap, norm = SIGNED_CMAP, colors.Normalize(vmin=float(finite.min()), vmax=0.0)
     else:
-        top = float(finite.max()) if finite.size else 1.0
-        low = float(finite.min()) if finite.size else 0.0
-        cmap, norm = MAGNITUDE_CMAP, colors.Normalize(vmin=min(low, top - 1e-6), vmax=top)
+        cmap, norm = MAGNITUDE_CMAP, colors.Normalize(vmin=0.0, vmax=float(finite.max()) if finite.size else 1.0)
     lo, hi = np.percentile(under[under > 0], [2, 98]) if (under > 0).any() else (0.0, 1.0)
     world = np.asarray(affine, dtype=np.float64) @ np.array([i, j, k, 1.0])
     planes = [
