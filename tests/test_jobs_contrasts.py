@@ -62,8 +62,7 @@ def _write_fit(path: Path, seed: int = 0, n: int = 48, zero_b: bool = False, exc
         h5["grid/shape"] = np.array(SHAPE, dtype=np.int64)
         h5["grid/affine"] = AFFINE
         h5["voxels/index"] = voxel_index.astype(np.int64)
-        h5["voxels/status_counts"] = h5py.Empty("f")
-        h5["voxels/status_counts"].attrs.update({"outside_mask": int(np.prod(SHAPE)) - v, "non_finite": 0,
+        h5.create_group("voxels/status_counts").attrs.update({"outside_mask": int(np.prod(SHAPE)) - v, "non_finite": 0,
                                                  "zero_variance": 0, "fitted": v})
         h5["design/matrix"] = X
         for key, values in (("names", NAMES), ("roles", ROLES), ("conditions", CONDS), ("basis", BASIS)):
