@@ -1,0 +1,108 @@
+"""Step ``contrast``: t or F contrast maps of one run from its stored fit.
+
+inputs
+    ``fit``: the run's ``fit.h5``.
+params
+    ``name`` (contrast name), ``definition`` (the config spec, see
+    :mod:`glmsteps.contrasts`), ``tail`` (t contrasts; overrides the
+    definition's tail when not None), ``skip_nonestimable`` (bool).
+wildcards
+    ``subject``, ``run_id``, ``contrast``.
+outputs
+    t contrast: ``effect``, ``variance``, ``t``, ``z``, ``p``; F contrast:
+    ``f``, ``z``, ``p`` (float32 NIfTI, NaN outside the fitted voxels).
+
+Each map's sidecar holds the provenance record plus ``map`` (level run),
+``kind``, ``tail``, ``dof`` (median residual dof), ``dof1`` (F), ``estimable``,
+``efficiency``, ``weights`` (the contrast matrix with the design column names)
+and, when applicable, ``skipped``/``excluded`` with ``reason``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+
+from .. import provenance
+from ..bids import parse_run_id
+from ..contrasts import MAP_KEYS, compute_contrast, contrast_matrix, parse_spec
+from ..errors import ConfigError, ContrastError
+from ..maps import save_map
+
+STEP = "contrast"
+
+
+def map_block(level: str, subject: str, session: str, task: str, run: str, contrast: str,
+              stat: str) -> dict[str, str]:
+    """The ``map`` block of a map sidecar (turned into index rows by the index step)."""
+    return {"level": level, "subject": subject, "session": session, "task": task, "run": run,
+            "contrast": contrast, "stat": stat}
+
+
+def check_output_keys(kind: str, outputs: Mapping[str, str], name: str) -> None:
+    """Raise ConfigError unless the rule's outputs are exactly the maps of this contrast kind."""
+    expected = set(MAP_KEYS[kind])
+    if set(outputs) != expected:
+        raise ConfigError(f"contrast {name!r}: a {kind} contrast writes outputs {sorted(expected)}, "
+                          f"the rule declares {sorted(outputs)}; fix the rule's outputs for this contrast kind")
+
+
+def _settings(params: Mapping[str, Any]) -> tuple[str, Any, Any, bool]:
+    missing = [k for k in ("name", "definition") if k not in params]
+    if missing:
+        raise ConfigError(f"{STEP}: params lack {missing}; pass name, definition, tail, skip_nonestimable")
+    skip = params.get("skip_nonestimable", False)
+    if not isinstance(skip, bool):
+        raise ConfigError(f"contrast {params['name']!r}: skip_nonestimable must be true or false, found {skip!r}")
+    return str(params["name"]), params["definition"], params.get("tail"), skip
+
+
+def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],
+        wildcards: Mapping[str, str], threads: int = 1) -> None:
+    """Compute and write one run's contrast maps (see the module docstring)."""
+    from glmsteps.fitstore import read_fit  # written in parallel by the fit stage
+
+    name, definition, tail, skip = _settings(params)
+    spec = parse_spec(name, definition, tail)
+    check_output_keys(spec.kind, outputs, name)
+    key = parse_run_id(str(wildcards["subject"]), str(wildcards["run_id"]))
+    run_label = f"sub-{key.subject} {key.run_id}"
+    fit = read_fit(inputs["fit"])
+    n_vox = len(fit.voxel_index)
+    extra: dict[str, Any] = {"kind": spec.kind, "tail": spec.tail if spec.kind == "t" else None}
+    with provenance.collect_warnings() as seen:
+        if fit.excluded:
+            maps = {k: np.full(n_vox, np.nan) for k in MAP_KEYS[spec.kind]}
+            extra.update(excluded=True, estimable=None, efficiency=None, dof=None,
+                         reason="run excluded upstream (too many censored volumes)")
+            try:
+                C = contrast_matrix(spec, list(fit.names), list(fit.conditions), list(fit.basis))
+                extra["weights"] = _weights(C, list(fit.names))
+            except ContrastError:
+                extra["weights"] = None
+        else:
+            result = compute_contrast(spec, np.asarray(fit.design), list(fit.names), list(fit.conditions),
+                                      list(fit.basis), fit.beta, fit.residual_variance, fit.bin,
+                                      fit.bin_covariance, fit.dof)
+            if not result.estimable and not skip:
+                raise ContrastError(f"contrast {name!r} is not estimable in {run_label} ({inputs['fit']}): "
+                                    f"{result.reason}; drop it from this run's weights or set skip_nonestimable: true")
+            maps = result.maps
+            extra.update(estimable=result.estimable, efficiency=result.efficiency, dof=result.dof2,
+                         weights=_weights(result.C, fit.names), excluded=False)
+            if spec.kind == "F":
+                extra["dof1"] = result.dof1
+            if not result.estimable:
+                extra.update(skipped=True, reason=result.reason)
+    record = provenance.build_record(STEP, params, {"fit": inputs["fit"]}, warnings_seen=seen)
+    for stat in MAP_KEYS[spec.kind]:
+        block = map_block("run", key.subject, key.session, key.task, key.run, name, stat)
+        provenance.write_sidecar(outputs[stat], record, map=block, **extra)
+        save_map(outputs[stat], maps[stat], fit.voxel_index, tuple(fit.shape), fit.affine)
+
+
+def _weights(C: np.ndarray, names: list[str]) -> list[dict[str, float]]:
+    """Non-zero weights of each contrast row by column name (for the sidecar)."""
+    return [{str(n): float(w) for n, w in zip(names, row) if w != 0} for row in np.atleast_2d(C)]

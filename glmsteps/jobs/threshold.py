@@ -1,0 +1,97 @@
+"""Step ``threshold``: threshold a z map, label clusters, tabulate them and draw slices.
+
+inputs
+    ``z``, ``p`` (maps of one contrast test), ``underlay`` (e.g. the run's
+    mean image; same grid).
+params
+    The threshold setting (see :mod:`glmsteps.threshold`), including ``name``.
+wildcards
+    ``threshold`` (and those of the maps).
+outputs
+    ``thresholded`` (z where significant, 0 elsewhere and outside the map),
+    ``mask`` (uint8 0/1), ``clusters`` (TSV, name ending in ``clusters.tsv``;
+    header only when nothing survives), ``figure`` (PNG slices through the
+    largest cluster's peak).
+
+Sidecars: ``thresholded.json`` (map block of the z map with stat
+``z_thresholded``), ``mask.json`` (stat ``mask``), ``clusters.json`` and the
+figure's sidecar; all carry the record, ``threshold`` (name), ``setting``,
+``n_tests``, ``p_cutoff``, ``n_clusters``, ``n_voxels`` and ``note``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+
+from .. import provenance
+from ..combine import check_same_grid
+from ..errors import ConfigError
+from ..fileio import read_json, save_nifti, write_tsv
+from ..maps import load_map
+from ..plots.slices import plot_orthogonal_slices
+from ..plots.style import save_figure
+from ..threshold import cluster_table, parse_setting, threshold_map
+
+STEP = "threshold"
+OUTPUT_KEYS = ("thresholded", "mask", "clusters", "figure")
+
+
+def _z_block(z_path: str, wildcards: Mapping[str, str]) -> dict[str, str]:
+    """The z map's ``map`` block (from its sidecar), or one built from the wildcards."""
+    side = provenance.sidecar_path(z_path)
+    if side.exists():
+        info = read_json(side)
+        if isinstance(info, dict) and isinstance(info.get("map"), dict):
+            return dict(info["map"])
+    return {"level": "", "subject": str(wildcards.get("subject", "")), "session": "", "task": "", "run": "",
+            "contrast": str(wildcards.get("contrast", "")), "stat": "z"}
+
+
+def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],
+        wildcards: Mapping[str, str], threads: int = 1) -> None:
+    """Threshold one z map (see the module docstring)."""
+    setting = parse_setting(params, name=str(params.get("name", wildcards.get("threshold", "threshold"))))
+    missing = sorted(set(OUTPUT_KEYS) - set(outputs))
+    if missing:
+        raise ConfigError(f"{STEP}: outputs lack {missing}; declare thresholded, mask, clusters, figure")
+    if not str(outputs["clusters"]).endswith("clusters.tsv"):
+        raise ConfigError(f"{STEP}: clusters output {outputs['clusters']} must end in clusters.tsv")
+    z, affine = load_map(inputs["z"])
+    p, p_affine = load_map(inputs["p"])
+    under, u_affine = load_map(inputs["underlay"])
+    check_same_grid([z.shape, p.shape, under.shape], [affine, p_affine, u_affine],
+                    [str(inputs["z"]), str(inputs["p"]), str(inputs["underlay"])])
+    with provenance.collect_warnings() as seen:
+        result = threshold_map(z, p, setting)
+        zooms = np.sqrt((affine[:3, :3] ** 2).sum(axis=0))
+        voxel_volume = float(abs(np.linalg.det(affine[:3, :3])))
+        table = cluster_table(z, result.labels, affine, voxel_volume)
+        thresholded = np.where(result.mask, np.nan_to_num(z.astype(np.float64), nan=0.0), 0.0)
+        if len(table):
+            peak_xyz = table.loc[0, ["peak_x_mm", "peak_y_mm", "peak_z_mm"]].to_numpy(dtype=np.float64)
+            centre = np.rint(np.linalg.solve(affine, np.append(peak_xyz, 1.0))[:3]).astype(int)
+        else:
+            centre = np.array(z.shape) // 2
+        block = _z_block(str(inputs["z"]), wildcards)
+        parts = [f"sub-{block['subject']}" if block.get("subject") else "",
+                 f"contrast {block['contrast']}" if block.get("contrast") else "",
+                 f"threshold {setting.name} ({setting.method})",
+                 f"{result.n_clusters} cluster(s)" if result.n_clusters else "no voxel survived"]
+        title = " | ".join(p for p in parts if p)
+        fig = plot_orthogonal_slices(under, thresholded, affine, tuple(int(c) for c in centre), title)
+    record = provenance.build_record(STEP, params, {"z": inputs["z"], "p": inputs["p"],
+                                                    "underlay": inputs["underlay"]}, warnings_seen=seen)
+    extra = {"threshold": setting.name, "setting": dict(params), "n_tests": result.n_tests,
+             "p_cutoff": result.p_cutoff, "n_clusters": result.n_clusters, "n_voxels": int(result.mask.sum()),
+             "note": result.note, "voxel_size_mm": [float(v) for v in zooms]}
+    provenance.write_sidecar(outputs["thresholded"], record, map={**block, "stat": "z_thresholded"}, **extra)
+    save_nifti(outputs["thresholded"], thresholded, affine)
+    provenance.write_sidecar(outputs["mask"], record, map={**block, "stat": "mask"}, **extra)
+    save_nifti(outputs["mask"], result.mask.astype(np.uint8), affine, dtype=np.uint8)
+    provenance.write_sidecar(outputs["clusters"], record, **extra)
+    write_tsv(outputs["clusters"], table)
+    provenance.write_sidecar(outputs["figure"], record, **extra)
+    save_figure(fig, outputs["figure"])
