@@ -1,4 +1,4 @@
-"""Tests of the contrast, design_contrasts, combine_runs and threshold jobs on tiny files."""
+"""Tests of the contrast, combine_runs and threshold jobs on tiny files."""
 
 from __future__ import annotations
 
@@ -20,7 +20,6 @@ from glmsteps.errors import ContrastError, DataError
 from glmsteps.fileio import read_tsv, save_nifti, write_json, write_tsv
 from glmsteps.jobs import combine as combine_job
 from glmsteps.jobs import contrast as contrast_job
-from glmsteps.jobs import design_contrasts as design_contrasts_job
 from glmsteps.jobs import threshold as threshold_job
 
 SHAPE = (6, 5, 4)
@@ -218,31 +217,6 @@ def test_contrast_job_excluded_run_writes_nan_maps(tmp_path):
     contrast_job.run({"fit": str(tmp_path / "fit.h5")}, out, params, WILD)
     assert all(np.isnan(_load(p)).all() for p in out.values())
     assert json.loads((tmp_path / "c" / "effect.json").read_text())["excluded"] is True
-
-
-# ---------------------------------------------------------------------------------------------
-# design_contrasts
-# ---------------------------------------------------------------------------------------------
-
-def test_design_contrasts_report(tmp_path):
-    X = _design(40, zero_b=True)
-    write_tsv(tmp_path / "design.tsv", pd.DataFrame(X, columns=NAMES))
-    write_json(tmp_path / "design.json", {"names": NAMES, "roles": ROLES, "conditions": CONDS, "basis": BASIS})
-    params = {"contrasts": {"a": {"weights": {"A": 1}}, "a_vs_b": {"weights": {"A": 1, "B": -1}},
-                            "both": {"rows": [{"A": 1}, {"drift_1": 1}]}}}
-    design_contrasts_job.run({"design": str(tmp_path / "design.tsv"), "design_summary": str(tmp_path / "design.json")},
-                             {"report": str(tmp_path / "design_contrasts.json")}, params, {})
-    report = json.loads((tmp_path / "design_contrasts.json").read_text())
-    assert report["provenance"]["step"] == "design_contrasts"
-    got = report["contrasts"]
-    c = np.array([1.0, 0, 0, 0])
-    Xr = X[:, [0, 2, 3]]
-    # reference: Dale (1999) efficiency 1 / (c (X'X)^-1 c'), numpy solve on the non-zero columns
-    assert got["a"]["efficiency"] == pytest.approx(1 / np.linalg.solve(Xr.T @ Xr, c[[0, 2, 3]])[0], rel=1e-8)
-    assert got["a_vs_b"]["estimable"] is False and got["a_vs_b"]["efficiency"] is None
-    C = np.eye(3)[[0, 1]]
-    # reference: Dale (1999) trace form 1 / trace(C (X'X)^-1 C')
-    assert got["both"]["efficiency"] == pytest.approx(1 / np.trace(C @ np.linalg.solve(Xr.T @ Xr, C.T)), rel=1e-8)
 
 
 # ---------------------------------------------------------------------------------------------
