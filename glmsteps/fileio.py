@@ -100,7 +100,10 @@ def read_tsv(path: str | os.PathLike[str]) -> pd.DataFrame:
     Only ``n/a`` (and empty cells) count as missing, so that a condition called
     ``NA`` or ``null`` survives as text.
     """
-    return pd.read_csv(path, sep="\t", na_values=["n/a", ""], keep_default_na=False)
+    try:
+        return pd.read_csv(path, sep="\t", na_values=["n/a", ""], keep_default_na=False)
+    except pd.errors.EmptyDataError:  # a table with no columns (e.g. no confounds selected)
+        return pd.DataFrame()
 
 
 def save_nifti(path: str | os.PathLike[str], data: np.ndarray, affine: np.ndarray,

@@ -218,10 +218,10 @@ def combine_params(wildcards):
 
 
 _THRESHOLD_KEYS = {
-    "uncorrected": ("p", "min_cluster_voxels", "connectivity"),
-    "fdr": ("q", "min_cluster_voxels", "connectivity"),
-    "bonferroni": ("alpha", "min_cluster_voxels", "connectivity"),
-    "cluster_extent": ("forming_p", "min_cluster_voxels", "connectivity"),
+    "uncorrected": ("p", "min_cluster_voxels", "connectivity", "tail"),
+    "fdr": ("q", "connectivity", "tail"),
+    "bonferroni": ("alpha", "connectivity", "tail"),
+    "cluster_extent": ("forming_p", "min_cluster_voxels", "connectivity", "tail"),
 }
 
 
@@ -229,7 +229,7 @@ def _threshold_params(level, name):
     """threshold: only the keys its method uses (schema defaults fill the others)."""
     setting = THRESHOLDS[level][name]
     keys = _THRESHOLD_KEYS[setting["method"]]
-    return {"name": name, "level": level, "method": setting["method"], **{k: setting[k] for k in keys}}
+    return {"name": name, "method": setting["method"], **{k: setting[k] for k in keys}}
 
 
 def run_threshold_params(wildcards):
