@@ -249,7 +249,6 @@ def fit_voxels(Y: npt.NDArray[np.floating], columns: npt.NDArray[np.integer], fa
     n, p = design.X.shape
     model = settings.noise_model
     max_lag = order if model == "arp" else 1
-    M = est.compute_bias_matrix(design.X, max_lag)
     starts = range(0, v, chunk)
 
     def block(s: int) -> tuple[slice, npt.NDArray[np.float64]]:
@@ -268,7 +267,10 @@ def fit_voxels(Y: npt.NDArray[np.floating], columns: npt.NDArray[np.integer], fa
             beta[:, sl] = ols.beta
             resvar[sl] = ols.residual_variance
         _log_progress("fit pass 1 (OLS)", sl.stop, v, t0)
-    acf = est.correct_autocorrelation(lag, M)
+    if model == "arp":
+        acf = est.correct_autocorrelation(lag, est.compute_bias_matrix(design.X, max_lag))
+    else:
+        acf = est.correct_ar1(lag, est.compute_ar1_correction(design.X))[None, :]
     lag1 = np.clip(acf[0], -est.MAX_ABS_RHO, est.MAX_ABS_RHO)
     if model == "ols":
         cov = (design.pinv @ design.pinv.T)[None]
