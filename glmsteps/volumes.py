@@ -109,9 +109,14 @@ def read_bold_header(path: str | os.PathLike[str]) -> BoldHeader:
     if len(shape) != 4:
         raise DataError(f"{path}: BOLD must be 4D (x, y, z, time), found shape {shape}; "
                         "pass the preprocessed time series, not a single volume")
-    slope, inter = hdr.get_slope_inter()
-    slope = 1.0 if slope is None or not np.isfinite(slope) or slope == 0 else float(slope)
-    inter = 0.0 if inter is None or not np.isfinite(inter) else float(inter)
+    # The array proxy holds what nibabel itself uses to read the data: the byte offset
+    # (vox_offset of the file; the header object of a loaded image may not keep it),
+    # the on-disk dtype with its byte order, and scl_slope / scl_inter (1 and 0 when unset).
+    proxy = img.dataobj
+    slope = float(getattr(proxy, "slope", 1.0))
+    inter = float(getattr(proxy, "inter", 0.0))
+    slope = 1.0 if not np.isfinite(slope) or slope == 0 else slope
+    inter = 0.0 if not np.isfinite(inter) else inter
     zooms = hdr.get_zooms()
     tr = float(zooms[3]) if len(zooms) > 3 else 0.0
     t_unit = hdr.get_xyzt_units()[1]
@@ -120,7 +125,7 @@ def read_bold_header(path: str | os.PathLike[str]) -> BoldHeader:
     elif t_unit == "usec":
         tr /= 1e6
     return BoldHeader(path=os.fspath(path), shape=shape, affine=np.asarray(img.affine, dtype=np.float64),
-                      dtype=hdr.get_data_dtype(), vox_offset=int(hdr.get_data_offset()), slope=slope, inter=inter,
+                      dtype=np.dtype(proxy.dtype), vox_offset=int(proxy.offset), slope=slope, inter=inter,
                       repetition_time_s=tr if tr > 0 else None, compressed=os.fspath(path).endswith(".gz"))
 
 
