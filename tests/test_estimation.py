@@ -1,0 +1,305 @@
+"""Tests of glmsteps.estimation against statsmodels, scipy and published formulas."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.signal
+import scipy.stats
+import statsmodels.api as sm
+from numpy.testing import assert_allclose
+from scipy.linalg import solve_toeplitz, toeplitz
+from statsmodels.tsa.arima_process import ArmaProcess
+
+from glmsteps import estimation as est
+from glmsteps.errors import DesignError, GlmstepsWarning
+
+TR_S = 2.0
+
+
+def block_design(n: int, spikes: tuple[int, ...] = ()) -> tuple[np.ndarray, list[str]]:
+    """A toy-run-like design: 2 block conditions (convolved with a double-gamma), 2 cosine drifts, intercept."""
+    t_s = np.arange(n) * TR_S
+    a = ((t_s // 20) % 2 == 0).astype(float)          # 20 s on / 20 s off
+    b = ((t_s // 30) % 2 == 0).astype(float)          # 30 s on / 30 s off
+    lags = np.arange(0, 32, TR_S)
+    # double-gamma shape (peak ~5 s, undershoot ~15 s, ratio 1/6)  # common practice
+    h = scipy.stats.gamma.pdf(lags, 6) - scipy.stats.gamma.pdf(lags, 16) / 6
+    a, b = np.convolve(a, h)[:n], np.convolve(b, h)[:n]
+    k = np.arange(1, 3)
+    drift = np.cos(np.pi * np.outer(np.arange(n) + 0.5, k) / n)
+    X = np.column_stack([a, b, drift, np.ones(n)])
+    roles = ["interest", "interest", "drift", "drift", "intercept"]
+    for s in spikes:
+        col = np.zeros(n)
+        col[s] = 1.0
+        X = np.column_stack([X, col])
+        roles.append("spike")
+    return X, roles
+
+
+def ar1_noise(rng: np.random.Generator, n: int, v: int, rho: float) -> np.ndarray:
+    """Stationary AR(1) noise, unit innovations, shape (n, v)."""
+    e = rng.standard_normal((n, v))
+    e[0] /= np.sqrt(1.0 - rho ** 2)
+    return scipy.signal.lfilter([1.0], [1.0, -rho], e, axis=0)
+
+
+# --------------------------------------------------------------------------- OLS
+
+def test_ols_matches_statsmodels() -> None:
+    rng = np.random.default_rng(0)
+    X, roles = block_design(120)
+    d = est.prepare_design(X, roles)
+    Y = 100 + X[:, :2] @ rng.normal(size=(2, 30)) + ar1_noise(rng, 120, 30, 0.3)
+    ols = est.fit_ols(d, Y)
+    cov = d.pinv @ d.pinv.T
+    for i in (0, 7, 29):
+        ref = sm.OLS(Y[:, i], X).fit()  # reference: statsmodels OLS
+        assert_allclose(ols.beta[:, i], ref.params, rtol=1e-6)
+        assert_allclose(ols.residual_variance[i], ref.scale, rtol=1e-6)
+        t = ols.beta[:, i] / np.sqrt(ols.residual_variance[i] * np.diag(cov))
+        assert_allclose(t, ref.tvalues, rtol=1e-6)
+    assert d.dof == 120 - 5
+
+
+def test_spike_column_must_be_indicator() -> None:
+    X, roles = block_design(40, spikes=(5,))
+    X[6, -1] = 1.0
+    with pytest.raises(DesignError, match="role spike"):
+        est.prepare_design(X, roles)
+
+
+def test_rank_deficient_design_warns() -> None:
+    X, roles = block_design(40)
+    X = np.column_stack([X, X[:, 0]])
+    with pytest.warns(GlmstepsWarning, match="rank 5"):
+        d = est.prepare_design(X, roles + ["interest"])
+    assert d.rank == 5 and d.dof == 35
+
+
+# --------------------------------------------------------------------------- AR(1) refit
+
+def test_ar1_refit_matches_statsmodels_gls() -> None:
+    rng = np.random.default_rng(1)
+    n = 120
+    X, roles = block_design(n)
+    d = est.prepare_design(X, roles)
+    Y = 100 + X[:, :2] @ np.array([[1.0], [0.5]]) + ar1_noise(rng, n, 40, 0.35)
+    ols = est.fit_ols(d, Y)
+    rho = est.correct_ar1(est.compute_lag_products(ols.residuals, 1), est.compute_ar1_correction(X))
+    bin_index, bin_rho = est.assign_bins(rho, 0.01)
+    bins = est.prepare_bins(d, bin_rho)
+    fit = est.fit_ar1_block(d, Y, ols, bin_index, bins)
+    for i in (0, 13, 39):
+        r = bin_rho[bin_index[i]]
+        ref = sm.GLS(Y[:, i], X, sigma=toeplitz(r ** np.arange(n))).fit()  # reference: statsmodels GLS
+        assert_allclose(fit.beta[:, i], ref.params, rtol=1e-6)
+        t = fit.beta[:, i] / np.sqrt(fit.residual_variance[i] * np.diag(bins.covariance[bin_index[i]]))
+        assert_allclose(t, ref.tvalues, rtol=1e-6)
+
+
+def test_censored_volumes_are_gaps_in_the_ar1_series() -> None:
+    rng = np.random.default_rng(2)
+    n, spikes, rho = 100, (0, 31, 32, 77, 99), 0.45
+    X, roles = block_design(n, spikes)
+    d = est.prepare_design(X, roles)
+    Y = 50 + ar1_noise(rng, n, 5, rho)
+    Y[31] += 40.0  # an artefact that censoring must remove
+    ols = est.fit_ols(d, Y)
+    bins = est.prepare_bins(d, np.array([rho]))
+    fit = est.fit_ar1_block(d, Y, ols, np.zeros(5, dtype=np.int32), bins)
+    keep = np.setdiff1d(np.arange(n), spikes)
+    sigma = rho ** np.abs(keep[:, None] - keep[None, :])  # AR(1) correlation at the kept scan times
+    p_main = X.shape[1] - len(spikes)
+    for i in range(5):
+        ref = sm.GLS(Y[keep, i], X[keep, :p_main], sigma=sigma).fit()  # reference: statsmodels GLS, kept volumes
+        assert_allclose(fit.beta[:p_main, i], ref.params, rtol=1e-6)
+        t = fit.beta[:p_main, i] / np.sqrt(fit.residual_variance[i] * np.diag(bins.covariance[0])[:p_main])
+        assert_allclose(t, ref.tvalues, rtol=1e-6)
+    # the residual of a censored volume is exactly zero, in OLS and after the refit
+    assert np.all(ols.residuals[list(spikes)] == 0.0)
+    res = est.compute_residuals(d, Y, fit.beta)
+    assert np.all(res[list(spikes)] == 0.0)
+    assert_allclose((Y - X @ fit.beta)[list(spikes)], 0.0, atol=1e-9)
+    assert d.dof == n - len(spikes) - p_main
+
+
+def test_ar1_sufficient_statistics_equal_explicit_whitening() -> None:
+    rng = np.random.default_rng(3)
+    X, roles = block_design(80, spikes=(10,))
+    d = est.prepare_design(X, roles)
+    Y = 10 + ar1_noise(rng, 80, 12, 0.6)
+    bin_index = np.repeat(np.arange(3, dtype=np.int32), 4)
+    rhos = np.array([-0.2, 0.3, 0.6])
+    fast = est.fit_ar1_block(d, Y, est.fit_ols(d, Y), bin_index, est.prepare_bins(d, rhos))
+    slow = est.fit_arp_block(d, Y, bin_index, est.prepare_bins(d, rhos, rhos[:, None]))
+    assert_allclose(fast.beta, slow.beta, rtol=1e-9, atol=1e-9)
+    assert_allclose(fast.residual_variance, slow.residual_variance, rtol=1e-9)
+
+
+# --------------------------------------------------------------------------- bias correction
+
+@pytest.mark.parametrize("rho", [0.0, 0.2, 0.4])
+def test_bias_correction_recovers_rho(rho: float) -> None:
+    n, v = 120, 4000
+    X, roles = block_design(n)
+    d = est.prepare_design(X, roles)
+    Y = ar1_noise(np.random.default_rng(10), n, v, rho)
+    lag = est.compute_lag_products(est.fit_ols(d, Y).residuals, 1)
+    corrected = est.correct_ar1(lag, est.compute_ar1_correction(X)).mean()
+    raw = est.raw_autocorrelation(lag)[0].mean()
+    # reference: Worsley et al. (2002) NeuroImage 15:1-15 (from memory): the corrected estimate is unbiased
+    # to first order; sampling SD of the mean here is about 0.095 / sqrt(4000) = 0.0015
+    assert abs(corrected - rho) < 0.02
+    assert abs(raw - rho) > 0.02
+
+
+def test_bias_matrix_first_entries() -> None:
+    X, _ = block_design(60)
+    M = est.compute_bias_matrix(X, 2)
+    R = np.eye(60) - X @ np.linalg.pinv(X)
+    D1 = np.eye(60, k=1) + np.eye(60, k=-1)
+    # reference: Worsley et al. (2002): M_00 = trace(R) = n - rank, M_01 = trace(R D_1) (from memory)
+    assert_allclose(M[0, 0], 60 - 5, rtol=1e-10)
+    assert_allclose(M[0, 1], np.trace(R @ D1), rtol=1e-10)
+    assert_allclose(M, M.T, rtol=1e-10)
+
+
+def test_linear_correction_is_exact_for_lag_one_correlation() -> None:
+    # Noise with V = I + r D_1 (MA(1), lag-1 correlation r) is the model of the linear correction.
+    n, v, r = 120, 4000, 0.3
+    theta = (1 - np.sqrt(1 - 4 * r * r)) / (2 * r)  # MA(1) with theta / (1 + theta^2) = r  # common practice
+    rng = np.random.default_rng(11)
+    e = rng.standard_normal((n + 1, v))
+    Y = e[1:] + theta * e[:-1]
+    X, roles = block_design(n)
+    d = est.prepare_design(X, roles)
+    lag = est.compute_lag_products(est.fit_ols(d, Y).residuals, 1)
+    acf = est.correct_autocorrelation(lag, est.compute_bias_matrix(X, 1))
+    # tolerance: 4 sampling SDs of a mean of 4000 estimates with SD about 0.09
+    assert abs(acf[0].mean() - r) < 4 * 0.09 / np.sqrt(v)
+
+
+def test_calibration_null_ar1() -> None:
+    n, v, rho = 120, 20000, 0.4
+    X, roles = block_design(n)
+    d = est.prepare_design(X, roles)
+    Y = 100 + ar1_noise(np.random.default_rng(42), n, v, rho)
+    c = np.array([1.0, -1.0, 0, 0, 0])
+    lo, hi = scipy.stats.binom.interval(0.99, v, 0.01)  # reference: scipy.stats.binom
+
+    ols = est.fit_ols(d, Y)
+    t_ols = c @ ols.beta / np.sqrt(ols.residual_variance * (c @ d.pinv @ d.pinv.T @ c))
+    frac_ols = np.mean(scipy.stats.t.sf(t_ols, d.dof) < 0.01)  # reference: scipy.stats.t
+    assert frac_ols > hi / v
+
+    rho_hat = est.correct_ar1(est.compute_lag_products(ols.residuals, 1), est.compute_ar1_correction(X))
+    grid = rho_hat.reshape(20, 25, 40)  # voxels on a 1 mm grid, estimates smoothed as the fit step does
+    rho_s = est.smooth_within_mask(grid, np.ones(grid.shape, dtype=bool), 4.0, (1.0, 1.0, 1.0)).ravel()
+    bin_index, bin_rho = est.assign_bins(rho_s, 0.01)
+    bins = est.prepare_bins(d, bin_rho)
+    fit = est.fit_ar1_block(d, Y, ols, bin_index, bins)
+    var = fit.residual_variance * np.einsum("i,bij,j->b", c, bins.covariance, c)[bin_index]
+    frac_ar = np.mean(scipy.stats.t.sf(c @ fit.beta / np.sqrt(var), d.dof) < 0.01)
+    assert lo / v <= frac_ar <= hi / v
+
+
+# --------------------------------------------------------------------------- AR(p)
+
+def test_levinson_durbin_matches_toeplitz_solve() -> None:
+    acf = np.array([0.5, 0.2, 0.05, -0.02])
+    phi, err, used = est.levinson_durbin(acf[:, None])
+    r = np.concatenate([[1.0], acf])
+    ref = solve_toeplitz(r[:4], r[1:5])  # reference: scipy.linalg.solve_toeplitz (Yule-Walker equations)
+    assert_allclose(phi[:, 0], ref, rtol=1e-10)
+    assert_allclose(err[0], 1 - ref @ acf, rtol=1e-10)
+    assert used[0] == 4
+
+
+def test_levinson_durbin_stops_at_non_stationary_order() -> None:
+    phi, _, used = est.levinson_durbin(np.array([[0.9], [0.2]]))  # r_2 far below r_1^2: |k_2| >= 0.99
+    assert used[0] == 1
+    assert_allclose(phi[:, 0], [0.9, 0.0])
+
+
+def test_autocorrelation_of_ar_matches_statsmodels() -> None:
+    phi = np.array([0.5, 0.2, -0.1])
+    ref = ArmaProcess(np.r_[1, -phi], [1]).acf(10)  # reference: statsmodels ArmaProcess.acf
+    assert_allclose(est.autocorrelation_of_ar(phi, 10), ref, rtol=1e-10)
+
+
+def test_ar2_refit_matches_statsmodels_gls() -> None:
+    rng = np.random.default_rng(4)
+    n = 150
+    X, roles = block_design(n, spikes=(40,))
+    d = est.prepare_design(X, roles)
+    phi = np.array([0.4, 0.2])
+    noise = scipy.signal.lfilter([1.0], np.r_[1, -phi], rng.standard_normal((n + 200, 3)), axis=0)[200:]
+    Y = 100 + noise
+    acf = est.autocorrelation_of_ar(phi, 3)[1:]
+    bins = est.prepare_bins(d, acf[:1], acf[None, :])
+    fit = est.fit_arp_block(d, Y, np.zeros(3, dtype=np.int32), bins)
+    sigma = toeplitz(est.autocorrelation_of_ar(phi, n))
+    for i in range(3):
+        ref = sm.GLS(Y[:, i], X, sigma=sigma).fit()  # reference: statsmodels GLS
+        assert_allclose(fit.beta[:-1, i], ref.params[:-1], rtol=1e-6)  # the spike coefficient is settled apart
+        t = fit.beta[:-1, i] / np.sqrt(fit.residual_variance[i] * np.diag(bins.covariance[0])[:-1])
+        assert_allclose(t, ref.tvalues[:-1], rtol=1e-6)
+
+
+def test_ar_order_fits_design() -> None:
+    X, roles = block_design(32)          # rank 5: 27 residual dof -> at most 2 coefficients (10 per coefficient)
+    d = est.prepare_design(X, roles)
+    assert est.check_ar_order(d, 4) == 2
+    assert est.check_ar_order(d, 1) == 1
+    X, roles = block_design(200)
+    assert est.check_ar_order(est.prepare_design(X, roles), 4) == 4
+
+
+# --------------------------------------------------------------------------- scaling, smoothing, bins
+
+def test_scale_factors() -> None:
+    mean = np.array([200.0, 400.0, 600.0])
+    assert_allclose(est.compute_scale_factors(mean, "percent") * mean, 100.0)  # common practice: 100 * y / mean
+    gm = est.compute_scale_factors(mean, "grand_mean", 1000.0)
+    assert_allclose(np.mean(gm * mean), 1000.0)
+    assert_allclose(gm, gm[0])
+    assert_allclose(est.compute_scale_factors(mean, "none"), 1.0)
+
+
+def test_smoothing_within_mask_keeps_a_constant_at_the_edge() -> None:
+    mask = np.zeros((12, 12, 12), dtype=bool)
+    mask[3:9, 2:10, 4:8] = True
+    out = est.smooth_within_mask(np.where(mask, 0.4, -5.0), mask, 6.0, (2.0, 2.0, 3.0))
+    # reference: Knutsson & Westin (1993): normalised convolution reproduces a constant signal exactly
+    assert_allclose(out[mask], 0.4, rtol=1e-12)
+    assert np.all(out[~mask] == 0)
+
+
+def test_smoothing_interior_equals_gaussian_filter() -> None:
+    from scipy.ndimage import gaussian_filter
+
+    rng = np.random.default_rng(5)
+    vals = rng.normal(size=(30, 30, 30))
+    mask = np.ones(vals.shape, dtype=bool)
+    out = est.smooth_within_mask(vals, mask, 4.0, (2.0, 2.0, 2.0))
+    sigma = 4.0 / np.sqrt(8 * np.log(2)) / 2.0  # FWHM = sqrt(8 ln 2) sigma  # common practice
+    ref = gaussian_filter(vals, sigma, mode="constant")  # reference: scipy.ndimage.gaussian_filter
+    assert_allclose(out[10:20, 10:20, 10:20], ref[10:20, 10:20, 10:20], rtol=1e-9, atol=1e-12)
+
+
+def test_assign_bins() -> None:
+    idx, centres = est.assign_bins(np.array([0.004, 0.006, -0.3149, 1.5, 0.3]), 0.01)
+    assert_allclose(centres[idx], [0.0, 0.01, -0.31, 0.99, 0.3], atol=1e-12)
+    assert np.all(np.diff(centres) > 0)
+
+
+def test_multiply_columns_is_chunk_independent() -> None:
+    rng = np.random.default_rng(6)
+    A, B = rng.normal(size=(23, 300)), rng.normal(size=(300, 1003))
+    whole = est.multiply_columns(A, B)
+    for size in (1, 7, 100):
+        parts = np.concatenate([est.multiply_columns(A, B[:, s:s + size]) for s in range(0, 1003, size)], axis=1)
+        assert np.array_equal(parts, whole)
+    assert_allclose(whole, A @ B, rtol=1e-12)

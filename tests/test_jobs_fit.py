@@ -1,0 +1,215 @@
+"""Tests of the fit job: end to end on a tiny run, chunk-size invariance, input checks, excluded runs."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pytest
+import scipy.signal
+import statsmodels.api as sm
+from numpy.testing import assert_allclose
+
+from glmsteps import estimation as est
+from glmsteps import provenance
+from glmsteps.errors import DataError
+from glmsteps.fitstore import read_fit
+from glmsteps.jobs import fit as job
+
+SHAPE = (6, 7, 5)
+AFFINE = np.diag([3.0, 3.0, 3.0, 1.0])
+N_VOL, FIRST = 62, 2
+TR_S = 2.0
+
+
+def toy_design(n: int) -> tuple[np.ndarray, list[str], list[str]]:
+    t = np.arange(n)
+    task = ((t // 8) % 2).astype(float)
+    X = np.column_stack([task, np.cos(np.pi * (t + 0.5) / n), np.ones(n)])
+    spike = np.zeros(n)
+    spike[20] = 1.0
+    X = np.column_stack([X, spike])
+    return X, ["go", "drift_00", "intercept", "spike_22"], ["interest", "drift", "intercept", "spike"]
+
+
+def make_run(root: Path, *, bold_shape: tuple | None = None, tr_s: float = TR_S, mask_shape: tuple = SHAPE,
+             mask_fill: bool = True, excluded: bool = False, rho: float = 0.3, seed: int = 0,
+             n_vol: int = N_VOL) -> dict[str, str]:
+    """Write a tiny run (BOLD, mask, design, summary) into ``root``; return the job inputs."""
+    rng = np.random.default_rng(seed)
+    X, names, roles = toy_design(n_vol - FIRST)
+    noise = scipy.signal.lfilter([1.0], [1.0, -rho], rng.standard_normal(SHAPE + (n_vol,)), axis=-1)
+    effect = rng.uniform(0, 30, SHAPE)[..., None]
+    data = 800 + rng.uniform(0, 400, SHAPE)[..., None] + 12 * noise
+    data[..., FIRST:] += effect * X[:, 0]
+    data[0, 0, 0] = np.nan                # non-finite voxel
+    data[1, 1, 1] = 640.0                 # constant voxel
+    data = data.astype(np.float32)
+    if bold_shape is not None:
+        data = np.zeros(bold_shape, np.float32)
+    img = nib.Nifti1Image(data, AFFINE)
+    img.header.set_zooms((3.0, 3.0, 3.0, tr_s)[: data.ndim])
+    nib.save(img, root / "bold.nii.gz")
+    mask = np.zeros(mask_shape, np.uint8)
+    if mask_fill:
+        mask[...] = 1
+        mask[-1] = 0
+    nib.save(nib.Nifti1Image(mask, AFFINE), root / "mask.nii.gz")
+    import pandas as pd
+
+    pd.DataFrame(X, columns=names).to_csv(root / "design.tsv", sep="\t", index=False)
+    (root / "design.json").write_text(json.dumps({
+        "names": names, "roles": roles, "conditions": ["go"], "basis": ["main", "", "", ""],
+        "first_volume": FIRST, "n_volumes": n_vol, "excluded": excluded}))
+    return {"bold": str(root / "bold.nii.gz"), "mask": str(root / "mask.nii.gz"),
+            "design": str(root / "design.tsv"), "design_summary": str(root / "design.json")}
+
+
+def outputs_in(folder: Path) -> dict[str, str]:
+    return {"fit": str(folder / "fit.h5"), "mean": str(folder / "mean.nii.gz"),
+            "residual_sd": str(folder / "residual_sd.nii.gz"), "ar_coef": str(folder / "ar_coef.nii.gz")}
+
+
+PARAMS = {"scaling": "percent", "grand_mean_value": 100.0, "noise_model": "ar1", "ar_order": 1,
+          "ar_smoothing_fwhm_mm": 6.0, "ar_bin_width": 0.01, "repetition_time_s": TR_S}
+WILDCARDS = {"subject": "01", "run_id": "task-go_run-1"}
+
+
+def test_job_end_to_end(tmp_path: Path) -> None:
+    inputs = make_run(tmp_path)
+    out = tmp_path / "out"
+    job.run(inputs, outputs_in(out), PARAMS, WILDCARDS)
+    fit = read_fit(out / "fit.h5")
+    counts = fit.attrs["status_counts"]
+    in_mask = 5 * 7 * 5
+    assert counts == {"outside_mask": 6 * 7 * 5 - in_mask, "non_finite": 1, "zero_variance": 1,
+                      "nonpositive_mean": 0, "fitted": in_mask - 2}
+    assert fit.beta.shape == (4, in_mask - 2) and fit.beta.dtype == np.float32
+    assert fit.attrs["noise_model"] == "ar1" and fit.attrs["scaling"] == "percent"
+    assert np.all(fit.dof == (N_VOL - FIRST) - 4)
+    side = json.loads((out / "fit.json").read_text())
+    assert side["voxel_counts"] == counts and side["n_bins"] == fit.bin_rho.size and side["dof"] == N_VOL - FIRST - 4
+    assert side["noise_model"] == "ar1" and set(side["timing_s"]) >= {"read", "fit"}
+    assert side["lineage_hash"] == fit.attrs["lineage_hash"]
+    # the bold hash computed while streaming equals the one build_record would compute
+    ref = provenance.build_record("fit", PARAMS, inputs, side["warnings"])
+    assert side["inputs"] == ref["inputs"] and side["lineage_hash"] == ref["lineage_hash"]
+    # QC maps: NaN outside the fitted voxels, residual SD is sqrt(residual variance)
+    sd = np.asarray(nib.load(out / "residual_sd.nii.gz").dataobj)
+    assert np.isnan(sd[-1]).all() and np.isnan(sd[0, 0, 0]) and np.isnan(sd[1, 1, 1])
+    assert_allclose(sd.ravel()[fit.voxel_index], np.sqrt(fit.residual_variance), rtol=1e-6)
+    ar = np.asarray(nib.load(out / "ar_coef.nii.gz").dataobj)
+    assert_allclose(ar.ravel()[fit.voxel_index], fit.ar_coef[:, 0])
+    mean_side = json.loads((out / "mean.json").read_text())
+    assert mean_side["map"] == {"level": "run", "subject": "01", "session": None, "task": "go", "run": "1",
+                                "contrast": None, "stat": "mean"}
+    # the refit is the GLS of percent-scaled data at the voxel's bin coefficient
+    data = nib.load(inputs["bold"]).get_fdata()[..., FIRST:].reshape(-1, N_VOL - FIRST)
+    X, _, _ = toy_design(N_VOL - FIRST)
+    n = X.shape[0]
+    for k in (0, 40, fit.voxel_index.size - 1):
+        y = data[fit.voxel_index[k]]
+        y = 100 * y / y.mean()                                     # common practice: percent signal change
+        r = fit.bin_rho[fit.bin[k]]
+        gls = sm.GLS(y, X, sigma=r ** np.abs(np.subtract.outer(np.arange(n), np.arange(n)))).fit()
+        assert_allclose(fit.beta[:3, k], gls.params[:3], rtol=1e-4, atol=1e-5)  # reference: statsmodels GLS
+        c = fit.bin_covariance[fit.bin[k]]
+        assert_allclose(fit.beta[0, k] / np.sqrt(fit.residual_variance[k] * c[0, 0]), gls.tvalues[0], rtol=1e-4)
+
+
+def test_ols_job_matches_statsmodels(tmp_path: Path) -> None:
+    inputs = make_run(tmp_path)
+    out = tmp_path / "out"
+    job.run(inputs, outputs_in(out), {**PARAMS, "noise_model": "ols", "scaling": "grand_mean",
+                                      "grand_mean_value": 1000.0}, WILDCARDS)
+    fit = read_fit(out / "fit.h5")
+    data = nib.load(inputs["bold"]).get_fdata()[..., FIRST:].reshape(-1, N_VOL - FIRST)
+    fitted = data[fit.voxel_index]
+    scale = 1000.0 / fitted.mean()                                  # common practice: grand-mean scaling
+    X, _, _ = toy_design(N_VOL - FIRST)
+    for k in (3, 77):
+        ref = sm.OLS(fitted[k] * scale, X).fit()                     # reference: statsmodels OLS
+        assert_allclose(fit.beta[:, k], ref.params, rtol=1e-5)
+        assert_allclose(fit.residual_variance[k], ref.scale, rtol=1e-5)
+    assert np.all(fit.ar_coef == 0) and fit.bin_rho.tolist() == [0.0]
+
+
+@pytest.mark.parametrize("model", ["ar1", "arp", "ols"])
+def test_results_do_not_depend_on_chunk_size(tmp_path: Path, model: str) -> None:
+    rng = np.random.default_rng(3)
+    X, _, roles = toy_design(60)
+    design = est.prepare_design(X, roles)
+    grid = (9, 10, 11)
+    Y = (500 + 20 * scipy.signal.lfilter([1.0], [1.0, -0.4], rng.standard_normal((60, 990)), axis=0)).astype(np.float32)
+    columns = np.arange(990)
+    factors = est.compute_scale_factors(Y.mean(axis=0), "percent")
+    mask = np.ones(grid, dtype=bool)
+    settings = job.check_params({**PARAMS, "noise_model": model, "ar_order": 2})
+    order = 2 if model == "arp" else 1
+    runs = [job.fit_voxels(Y, columns, factors, design, settings, order, size, mask, (3.0, 3.0, 3.0))
+            for size in (7, 1000, 990)]
+    for other in runs[:2]:
+        for name in ("beta", "residual_variance", "ar_coef", "bin", "bin_rho", "bin_covariance", "lag1"):
+            assert np.array_equal(getattr(other, name), getattr(runs[2], name)), name
+
+
+def test_chunk_size_from_environment(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    inputs = make_run(tmp_path)
+    job.run(inputs, outputs_in(tmp_path / "a"), PARAMS, WILDCARDS)
+    monkeypatch.setenv("GLMSTEPS_CHUNK_VOXELS", "7")
+    assert job.chunk_voxels() == 7
+    job.run(inputs, outputs_in(tmp_path / "b"), PARAMS, WILDCARDS)
+    a, b = read_fit(tmp_path / "a" / "fit.h5"), read_fit(tmp_path / "b" / "fit.h5")
+    assert np.array_equal(a.beta, b.beta) and np.array_equal(a.residual_variance, b.residual_variance)
+    assert a.attrs["lineage_hash"] == b.attrs["lineage_hash"]
+
+
+def test_arp_order_follows_the_design(tmp_path: Path) -> None:
+    inputs = make_run(tmp_path)
+    out = tmp_path / "out"
+    job.run(inputs, outputs_in(out), {**PARAMS, "noise_model": "arp", "ar_order": 4}, WILDCARDS)
+    side = json.loads((out / "fit.json").read_text())
+    # 60 kept volumes, rank 4: 56 residual dof fit 4 coefficients (10 dof each)
+    assert side["ar_order"] == 4 and read_fit(out / "fit.h5").ar_coef.shape[1] == 4 and side["warnings"] == []
+    short = tmp_path / "short"
+    short.mkdir()
+    inputs = make_run(short, n_vol=36)  # 34 kept volumes, 30 residual dof: AR(3) at most
+    job.run(inputs, outputs_in(short / "out"), {**PARAMS, "noise_model": "arp", "ar_order": 4}, WILDCARDS)
+    side = json.loads((short / "out" / "fit.json").read_text())
+    assert side["ar_order"] == 3 and read_fit(short / "out" / "fit.h5").ar_coef.shape[1] == 3
+    assert len(side["warnings"]) == 1 and "AR(4) does not fit" in side["warnings"][0]
+
+
+def test_excluded_run(tmp_path: Path) -> None:
+    inputs = make_run(tmp_path, excluded=True)
+    out = tmp_path / "out"
+    job.run(inputs, outputs_in(out), PARAMS, WILDCARDS)
+    fit = read_fit(out / "fit.h5")
+    assert fit.excluded and fit.beta.shape == (4, 0)
+    for name in ("mean", "residual_sd", "ar_coef"):
+        assert np.isnan(np.asarray(nib.load(out / f"{name}.nii.gz").dataobj)).all()
+        assert json.loads((out / f"{name}.json").read_text())["excluded"] is True
+    assert json.loads((out / "fit.json").read_text())["excluded"] is True
+
+
+@pytest.mark.parametrize("case, pattern", [
+    ("3d", r"must be 4D .* found shape \(6, 7, 5\)"),
+    ("volumes", r"61 volumes but the design summary .* says 62"),
+    ("tr", r"header TR .* 2.5 s differs from the configured repetition_time_s 2 s"),
+    ("grid", r"mask grid \(6, 7, 4\) differs from BOLD grid \(6, 7, 5\)"),
+    ("empty", r"mask is empty"),
+])
+def test_bad_inputs_fail_up_front(tmp_path: Path, case: str, pattern: str) -> None:
+    kwargs = {"3d": {"bold_shape": SHAPE}, "volumes": {"bold_shape": SHAPE + (N_VOL - 1,)}, "tr": {"tr_s": 2.5},
+              "grid": {"mask_shape": (6, 7, 4)}, "empty": {"mask_fill": False}}[case]
+    inputs = make_run(tmp_path, **kwargs)
+    out = tmp_path / "out"
+    with pytest.raises(DataError, match=pattern) as info:
+        job.run(inputs, outputs_in(out), PARAMS, WILDCARDS)
+    message = str(info.value)
+    assert "\n" not in message
+    named = {"3d": "bold", "volumes": "bold", "tr": "bold", "grid": "mask", "empty": "mask"}[case]
+    assert inputs[named] in message
+    assert not out.exists()
