@@ -592,3 +592,43 @@ def fit_contrast_with_missing(X: FloatArray, Y: FloatArray, V: FloatArray | None
         for key in out:
             out[key][cols] = getattr(fit, key)
     return ContrastFit(**out), bad
+
+
+# ---------------------------------------------------------------------------
+# per-site quality control
+# ---------------------------------------------------------------------------
+
+def summarise_sites(Y: FloatArray, sites: Sequence[object]) -> tuple[pd.DataFrame, FloatArray]:
+    """Per-site summary of subjects' effects within the group mask.
+
+    Parameters
+    ----------
+    Y : ndarray, shape (n_subjects, n_voxels)
+        Effects at the group-mask voxels (NaN where a subject has no value).
+    sites : sequence, length n_subjects
+        Site of each subject.
+
+    Returns
+    -------
+    table : DataFrame
+        One row per site: ``site``, ``n_subjects``, ``mean_effect`` (mean of the
+        subjects' mean effects), ``sd_between_subjects`` (SD, ddof = 1, of the
+        subjects' mean effects; NaN for one subject) and
+        ``mean_sd_within_subject`` (average over subjects of the spatial SD of
+        the effect within the mask).
+    subject_means : ndarray, shape (n_subjects,)
+        Each subject's mean effect within the mask.
+    """
+    labels = np.array([str(s) for s in sites], dtype=object)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        subject_means = np.nanmean(Y, axis=1) if Y.shape[1] else np.full(Y.shape[0], np.nan)
+        subject_sds = np.nanstd(Y, axis=1, ddof=1) if Y.shape[1] > 1 else np.full(Y.shape[0], np.nan)
+    rows = []
+    for site in sorted(set(labels.tolist())):
+        pick = labels == site
+        means = subject_means[pick]
+        rows.append({"site": site, "n_subjects": int(pick.sum()), "mean_effect": float(np.mean(means)),
+                     "sd_between_subjects": float(np.std(means, ddof=1)) if pick.sum() > 1 else float("nan"),
+                     "mean_sd_within_subject": float(np.mean(subject_sds[pick]))})
+    return pd.DataFrame(rows), subject_means
