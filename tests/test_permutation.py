@@ -149,3 +149,28 @@ def test_fwer_calibration_on_smooth_null_data(method: str) -> None:
     low, high = stats.binom.interval(0.95, n_datasets, 0.05)
     assert low <= any_voxel <= high, any_voxel
     assert low <= any_cluster <= high, any_cluster
+
+
+def test_paired_block_flips_equal_label_swaps_within_pairs() -> None:
+    rng = np.random.default_rng(9)
+    n_pairs = 6
+    blocks = np.repeat(np.arange(n_pairs), 2)
+    condition = np.tile([1.0, 0.0], n_pairs)
+    X = np.column_stack([condition, (blocks[:, None] == np.arange(n_pairs)).astype(float)])
+    c = np.zeros(X.shape[1])
+    c[0] = 1.0
+    Y = rng.normal(size=(2 * n_pairs, 4)) + condition[:, None] * 0.7 + blocks[:, None] * 0.3
+    model = pm.build_freedman_lane(X, c)
+    flips = pm.make_sign_flips(blocks, 8, seed=4)
+    fitted = model.reduced_projector @ Y
+    resid = Y - fitted
+    t = pm.t_from_operators(model, pm.permutation_operators(model, "sign_flip", flips), resid,
+                            model.contrast_weights @ fitted, (resid**2).sum(0))
+    for b in range(8):
+        swapped = np.arange(2 * n_pairs)
+        for k in np.flatnonzero(flips[b, 0::2] < 0):
+            swapped[[2 * k, 2 * k + 1]] = [2 * k + 1, 2 * k]
+        for v in range(4):
+            # reference: statsmodels OLS refit with the two members of each flipped pair exchanged
+            res = sm.OLS(Y[swapped, v], X).fit()
+            assert t[b, v] == pytest.approx(res.tvalues[0], rel=1e-9)
