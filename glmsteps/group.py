@@ -516,7 +516,11 @@ def fit_mixed_contrast(X: FloatArray, Y: FloatArray, V: FloatArray, c: FloatArra
     """
     X = np.asarray(X, dtype=np.float64)
     if method == "mixed_reml":
-        tau2, _ = estimate_between_variance_reml(X, Y, V)
+        tau2, converged = estimate_between_variance_reml(X, Y, V)
+        if not converged.all():
+            warnings.warn(f"group model: REML of the between-subject variance did not converge at "
+                          f"{int(np.sum(~converged))} of {converged.size} voxels; their last iterate is used",
+                          GlmstepsWarning, stacklevel=2)
     elif method == "mixed_dl":
         tau2 = estimate_between_variance_dl(X, Y, V)
     else:
