@@ -198,7 +198,8 @@ if [[ $ACCOUNTING == slurmdbd ]]; then
     until_ok "$WAIT_S" "answer from MariaDB" mariadb-admin ping
   fi
   db_pass=$(sed -n 's/^StoragePass=//p' "$DBD_CONF" 2>/dev/null || true)
-  [[ -n $db_pass ]] || db_pass=$(tr -dc 'a-zA-Z0-9' </dev/urandom | head -c 24)
+  # (a finite read: `tr </dev/urandom | head` dies of SIGPIPE under pipefail)
+  [[ -n $db_pass ]] || db_pass=$(head -c 48 /dev/urandom | base64 | tr -dc 'a-zA-Z0-9')
   mariadb <<SQL
 CREATE DATABASE IF NOT EXISTS slurm_acct_db;
 CREATE USER IF NOT EXISTS 'slurm'@'localhost' IDENTIFIED BY '$db_pass';

@@ -29,19 +29,29 @@ alive_as() {  # alive_as <pid> <name>: running (not a zombie) under that name
     && ! grep -qs '^State:.*zombie' /proc/"$1"/status
 }
 
-# cancel the cluster's jobs while the controller still answers, so that no
-# job step outlives slurmd
+# cancel the cluster's jobs while the controller still answers, and wait
+# until they are over: a job step is over when its slurmstepd has exited
+# (SLURM sends SIGTERM, then SIGKILL after KillWait=5 s, then the slurmstepd
+# ends). The daemons are stopped only then, so no job process outlives them.
+active_jobs() {
+  squeue -h -t PENDING,RUNNING,CONFIGURING,COMPLETING,SUSPENDED -o %i 2>/dev/null
+}
+step_daemons() {  # only looked at, never signalled: SLURM ends them itself
+  pgrep -x slurmstepd 2>/dev/null
+}
 if [[ " $ONLY " == *" slurmctld "* ]] && timeout 10 scontrol ping >/dev/null 2>&1; then
-  active=$(squeue -h -t PENDING,RUNNING,CONFIGURING,COMPLETING,SUSPENDED -o %i 2>/dev/null)
-  if [[ -n $active ]]; then
-    say "cancelling jobs: $(echo $active)"
+  jobs_left=$(active_jobs)
+  if [[ -n $jobs_left ]]; then
+    say "cancelling jobs: $(echo $jobs_left)"
     # shellcheck disable=SC2086
-    scancel $active 2>/dev/null
-    for _ in $(seq 1 60); do
-      [[ -z $(squeue -h -t PENDING,RUNNING,CONFIGURING,COMPLETING,SUSPENDED -o %i 2>/dev/null) ]] && break
-      sleep 0.25
-    done
+    scancel $jobs_left 2>/dev/null
   fi
+  for _ in $(seq 1 120); do  # 30 s
+    [[ -z $(active_jobs) && -z $(step_daemons) ]] && break
+    sleep 0.25
+  done
+  left=$(step_daemons)
+  [[ -z $left ]] || say "job steps still running after 30 s (slurmstepd pids: $(echo $left))"
 fi
 
 stop_pid() {  # stop_pid <name> <pid>
