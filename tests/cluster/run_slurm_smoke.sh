@@ -143,10 +143,10 @@ say "squeue -t all -j $ids_csv:"
 squeue_out=$(squeue -h -t all -j "$ids_csv" -o '%i|%T|%k')
 sed 's/^/  /' <<<"$squeue_out" >&2
 if [[ $GS_SLURM_ACCOUNTING == slurmdbd ]]; then
-  sacct_cmd=(sacct -X -n -P -j "$ids_csv" -o JobID,State)
+  sacct_cmd=(sacct -X -n -P -j "$ids_csv" -o "JobID,State")
 else
   # without slurmdbd, sacct reads the job completion file (JobCompType=jobcomp/filetxt)
-  sacct_cmd=(sacct -c -n -P -j "$ids_csv" -o JobID,State)
+  sacct_cmd=(sacct -c -n -P -j "$ids_csv" -o "JobID,State")
 fi
 say "${sacct_cmd[*]}:"
 sacct_out=$("${sacct_cmd[@]}")

@@ -42,7 +42,7 @@ step_daemons() {  # only looked at, never signalled: SLURM ends them itself
 if [[ " $ONLY " == *" slurmctld "* ]] && timeout 10 scontrol ping >/dev/null 2>&1; then
   jobs_left=$(active_jobs)
   if [[ -n $jobs_left ]]; then
-    say "cancelling jobs: $(echo $jobs_left)"
+    say "cancelling jobs: ${jobs_left//$'\n'/ }"
     # shellcheck disable=SC2086
     scancel $jobs_left 2>/dev/null
   fi
@@ -51,7 +51,7 @@ if [[ " $ONLY " == *" slurmctld "* ]] && timeout 10 scontrol ping >/dev/null 2>&
     sleep 0.25
   done
   left=$(step_daemons)
-  [[ -z $left ]] || say "job steps still running after 30 s (slurmstepd pids: $(echo $left))"
+  [[ -z $left ]] || say "job steps still running after 30 s (slurmstepd pids: ${left//$'\n'/ })"
 fi
 
 stop_pid() {  # stop_pid <name> <pid>
