@@ -4,16 +4,18 @@ rule combine_runs:
         effect=run_effects,
         variance=run_variances,
     output:
-        effect=SUBJECT_DIR + "/contrast-{tcon}/effect.nii.gz",
-        variance=SUBJECT_DIR + "/contrast-{tcon}/variance.nii.gz",
-        t=SUBJECT_DIR + "/contrast-{tcon}/t.nii.gz",
-        z=SUBJECT_DIR + "/contrast-{tcon}/z.nii.gz",
-        p=SUBJECT_DIR + "/contrast-{tcon}/p.nii.gz",
+        effect=SUBJECT_DIR + "/contrast-{contrast}/effect.nii.gz",
+        variance=SUBJECT_DIR + "/contrast-{contrast}/variance.nii.gz",
+        t=SUBJECT_DIR + "/contrast-{contrast}/t.nii.gz",
+        z=SUBJECT_DIR + "/contrast-{contrast}/z.nii.gz",
+        p=SUBJECT_DIR + "/contrast-{contrast}/p.nii.gz",
     params:
         settings=combine_params,
+    wildcard_constraints:
+        contrast=T_CONTRAST,
     group:
         "subject_{subject}"
     log:
-        LOG_DIR + "/sub-{subject}/combined/contrast-{tcon}.log",
+        LOG_DIR + "/sub-{subject}/combined/contrast-{contrast}.log",
     script:
         "../scripts/combine_runs.py"

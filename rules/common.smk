@@ -77,17 +77,19 @@ wildcard_constraints:
     subject="[A-Za-z0-9]+",
     run_id="(ses-[A-Za-z0-9]+_)?task-[A-Za-z0-9]+_run-[A-Za-z0-9]+",
     contrast=_alternation(list(CONTRASTS)),
-    tcon=_alternation(T_CONTRASTS),
-    fcon=_alternation(F_CONTRASTS),
     threshold="[A-Za-z0-9_]+",
     model="[A-Za-z0-9_]+",
-    gcon="[A-Za-z0-9_]+",
+    group_contrast="[A-Za-z0-9_]+",
+
+#: Per-rule constraints: rules that only make sense for t (or F) contrasts use these.
+T_CONTRAST = _alternation(T_CONTRASTS)
+F_CONTRAST = _alternation(F_CONTRASTS)
 
 
 # ---------------------------------------------------------------- paths
 RUN_DIR = OUT + "/sub-{subject}/{run_id}"
 SUBJECT_DIR = OUT + "/sub-{subject}/combined"
-GROUP_DIR = OUT + "/group/model-{model}/contrast-{tcon}/{gcon}"
+GROUP_DIR = OUT + "/group/model-{model}/contrast-{contrast}/{group_contrast}"
 LOG_DIR = OUT + "/logs"
 
 
@@ -128,7 +130,7 @@ def runs_of(subject):
 
 def run_maps_of(wildcards, stat):
     """One subject's run-level maps of a t contrast (one per run)."""
-    return [f"{OUT}/sub-{wildcards.subject}/{rid}/contrast-{wildcards.tcon}/{stat}.nii.gz"
+    return [f"{OUT}/sub-{wildcards.subject}/{rid}/contrast-{wildcards.contrast}/{stat}.nii.gz"
             for rid in runs_of(wildcards.subject)]
 
 
@@ -151,7 +153,7 @@ def group_underlay(wildcards):
 
 
 def subject_maps_of(wildcards, stat):
-    return [f"{OUT}/sub-{s}/combined/contrast-{wildcards.tcon}/{stat}.nii.gz" for s in SUBJECTS]
+    return [f"{OUT}/sub-{s}/combined/contrast-{wildcards.contrast}/{stat}.nii.gz" for s in SUBJECTS]
 
 
 def subject_effects(wildcards):
@@ -202,19 +204,14 @@ def _contrast_params(name):
             "skip_nonestimable": config["contrast_options"]["skip_nonestimable"]}
 
 
-def t_contrast_params(wildcards):
-    """contrast (t): this contrast's definition only."""
-    return _contrast_params(wildcards.tcon)
-
-
-def f_contrast_params(wildcards):
-    """contrast (F): this contrast's definition only."""
-    return _contrast_params(wildcards.fcon)
+def contrast_params(wildcards):
+    """contrast (t or F): this contrast's definition only."""
+    return _contrast_params(wildcards.contrast)
 
 
 def combine_params(wildcards):
     """combine_runs: the contrast's name and tail."""
-    return {"name": wildcards.tcon, "tail": CONTRASTS[wildcards.tcon].get("tail", "two-sided")}
+    return {"name": wildcards.contrast, "tail": CONTRASTS[wildcards.contrast].get("tail", "two-sided")}
 
 
 _THRESHOLD_KEYS = {
@@ -248,8 +245,8 @@ def group_model_params(wildcards):
     """group: the model's settings and this job's group contrast (never the permutation settings)."""
     spec = GROUP_MODELS[wildcards.model]
     keep = {k: v for k, v in spec.items() if k not in ("group_contrasts", "permutation", "contrasts")}
-    return {**keep, "model": wildcards.model,
-            "contrast": {"name": wildcards.gcon, "weights": dict(spec["group_contrasts"][wildcards.gcon])}}
+    return {**keep,
+            "contrast": {"name": wildcards.group_contrast, "weights": dict(spec["group_contrasts"][wildcards.group_contrast])}}
 
 
 def group_permutation_params(wildcards):

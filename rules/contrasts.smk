@@ -2,17 +2,19 @@ rule contrast_t:
     input:
         fit=RUN_DIR + "/fit.h5",
     output:
-        effect=RUN_DIR + "/contrast-{tcon}/effect.nii.gz",
-        variance=RUN_DIR + "/contrast-{tcon}/variance.nii.gz",
-        t=RUN_DIR + "/contrast-{tcon}/t.nii.gz",
-        z=RUN_DIR + "/contrast-{tcon}/z.nii.gz",
-        p=RUN_DIR + "/contrast-{tcon}/p.nii.gz",
+        effect=RUN_DIR + "/contrast-{contrast}/effect.nii.gz",
+        variance=RUN_DIR + "/contrast-{contrast}/variance.nii.gz",
+        t=RUN_DIR + "/contrast-{contrast}/t.nii.gz",
+        z=RUN_DIR + "/contrast-{contrast}/z.nii.gz",
+        p=RUN_DIR + "/contrast-{contrast}/p.nii.gz",
     params:
-        settings=t_contrast_params,
+        settings=contrast_params,
+    wildcard_constraints:
+        contrast=T_CONTRAST,
     group:
         "subject_{subject}"
     log:
-        LOG_DIR + "/sub-{subject}/{run_id}/contrast-{tcon}.log",
+        LOG_DIR + "/sub-{subject}/{run_id}/contrast-{contrast}.log",
     script:
         "../scripts/contrast.py"
 
@@ -21,14 +23,16 @@ rule contrast_f:
     input:
         fit=RUN_DIR + "/fit.h5",
     output:
-        f=RUN_DIR + "/contrast-{fcon}/f.nii.gz",
-        z=RUN_DIR + "/contrast-{fcon}/z.nii.gz",
-        p=RUN_DIR + "/contrast-{fcon}/p.nii.gz",
+        f=RUN_DIR + "/contrast-{contrast}/f.nii.gz",
+        z=RUN_DIR + "/contrast-{contrast}/z.nii.gz",
+        p=RUN_DIR + "/contrast-{contrast}/p.nii.gz",
     params:
-        settings=f_contrast_params,
+        settings=contrast_params,
+    wildcard_constraints:
+        contrast=F_CONTRAST,
     group:
         "subject_{subject}"
     log:
-        LOG_DIR + "/sub-{subject}/{run_id}/contrast-{fcon}.log",
+        LOG_DIR + "/sub-{subject}/{run_id}/contrast-{contrast}.log",
     script:
         "../scripts/contrast.py"

@@ -15,10 +15,12 @@ rule group_model:
         site_figure=GROUP_DIR + "/site_qc.png",
     params:
         settings=group_model_params,
+    wildcard_constraints:
+        contrast=T_CONTRAST,
     resources:
         mem_mb=4000,
     log:
-        LOG_DIR + "/group/model-{model}/contrast-{tcon}/{gcon}.log",
+        LOG_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}.log",
     script:
         "../scripts/group_model.py"
 
@@ -35,11 +37,13 @@ rule group_permutation:
         p_fwe_tfce=GROUP_DIR + "/p_fwe_tfce.nii.gz",
     params:
         settings=group_permutation_params,
+    wildcard_constraints:
+        contrast=T_CONTRAST,
     threads: 2
     resources:
         mem_mb=4000,
         runtime=120,
     log:
-        LOG_DIR + "/group/model-{model}/contrast-{tcon}/{gcon}_permutation.log",
+        LOG_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}_permutation.log",
     script:
         "../scripts/group_permutation.py"

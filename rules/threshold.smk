@@ -21,20 +21,20 @@ rule threshold_run:
 
 rule threshold_subject:
     input:
-        z=SUBJECT_DIR + "/contrast-{tcon}/z.nii.gz",
-        p=SUBJECT_DIR + "/contrast-{tcon}/p.nii.gz",
+        z=SUBJECT_DIR + "/contrast-{contrast}/z.nii.gz",
+        p=SUBJECT_DIR + "/contrast-{contrast}/p.nii.gz",
         underlay=subject_underlay,
     output:
-        thresholded=SUBJECT_DIR + "/contrast-{tcon}/threshold-{threshold}/thresholded.nii.gz",
-        mask=SUBJECT_DIR + "/contrast-{tcon}/threshold-{threshold}/mask.nii.gz",
-        clusters=SUBJECT_DIR + "/contrast-{tcon}/threshold-{threshold}/clusters.tsv",
-        figure=SUBJECT_DIR + "/contrast-{tcon}/threshold-{threshold}/slices.png",
+        thresholded=SUBJECT_DIR + "/contrast-{contrast}/threshold-{threshold}/thresholded.nii.gz",
+        mask=SUBJECT_DIR + "/contrast-{contrast}/threshold-{threshold}/mask.nii.gz",
+        clusters=SUBJECT_DIR + "/contrast-{contrast}/threshold-{threshold}/clusters.tsv",
+        figure=SUBJECT_DIR + "/contrast-{contrast}/threshold-{threshold}/slices.png",
     params:
         settings=subject_threshold_params,
     group:
         "subject_{subject}"
     log:
-        LOG_DIR + "/sub-{subject}/combined/contrast-{tcon}_threshold-{threshold}.log",
+        LOG_DIR + "/sub-{subject}/combined/contrast-{contrast}_threshold-{threshold}.log",
     script:
         "../scripts/threshold.py"
 
@@ -52,6 +52,6 @@ rule threshold_group:
     params:
         settings=group_threshold_params,
     log:
-        LOG_DIR + "/group/model-{model}/contrast-{tcon}/{gcon}_threshold-{threshold}.log",
+        LOG_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}_threshold-{threshold}.log",
     script:
         "../scripts/threshold.py"
