@@ -14,10 +14,12 @@ import os
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
+
+if TYPE_CHECKING:  # pandas is imported lazily: many steps never read a table
+    import pandas as pd
 
 #: Compound file extensions recognised when naming temporaries and sidecars.
 KNOWN_EXTENSIONS: tuple[str, ...] = (".nii.gz", ".nii", ".tsv", ".json", ".h5", ".png", ".svg", ".html", ".txt")
@@ -100,6 +102,8 @@ def read_tsv(path: str | os.PathLike[str]) -> pd.DataFrame:
     Only ``n/a`` (and empty cells) count as missing, so that a condition called
     ``NA`` or ``null`` survives as text.
     """
+    import pandas as pd
+
     try:
         return pd.read_csv(path, sep="\t", na_values=["n/a", ""], keep_default_na=False)
     except pd.errors.EmptyDataError:  # a table with no columns (e.g. no confounds selected)
