@@ -26,7 +26,7 @@ _CHUNK_VOXELS = 16384
 #: Root attributes copied from the provenance record.
 _RECORD_ATTRS = ("step", "params_hash", "lineage_hash", "glmsteps_version")
 #: Root attributes describing the fit (taken from ``StoredFit.attrs``, else the record's params).
-_FIT_ATTRS = ("noise_model", "scaling", "repetition_time_s")
+_FIT_ATTRS = ("autocorrelation", "scaling", "repetition_time_s")
 #: Voxel status counters stored as attributes of ``voxels/status_counts``.
 STATUS_KEYS = ("outside_mask", "non_finite", "zero_variance", "nonpositive_mean", "fitted")
 

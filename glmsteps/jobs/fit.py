@@ -7,7 +7,7 @@ Inputs (named)
     ``first_volume``, ``n_volumes``, ``excluded``).
 Params
     ``scaling`` (percent | grand_mean | none), ``grand_mean_value``,
-    ``noise_model`` (ols | ar1 | arp), ``ar_order`` (1..4),
+    ``autocorrelation`` (ols | ar1 | arp), ``ar_order`` (1..4),
     ``ar_smoothing_fwhm_mm`` (>= 0), ``ar_bin_width``, ``repetition_time_s``.
 Outputs (named)
     ``fit`` (fit.h5, sidecar fit.json), ``mean``, ``residual_sd``, ``ar_coef``
@@ -55,7 +55,7 @@ class FitSettings:
 
     scaling: est.ScalingMethod
     grand_mean_value: float
-    noise_model: est.NoiseModel
+    autocorrelation: est.NoiseModel
     ar_order: int
     ar_smoothing_fwhm_mm: float
     ar_bin_width: float
@@ -73,9 +73,9 @@ def check_params(params: Mapping[str, Any]) -> FitSettings:
     scaling = p.get("scaling", "percent")
     if scaling not in ("percent", "grand_mean", "none"):
         raise ConfigError(f"config fit.scaling: expected percent, grand_mean or none, found {scaling!r}")
-    noise = p.get("noise_model", "ar1")
+    noise = p.get("autocorrelation", "ar1")
     if noise not in ("ols", "ar1", "arp"):
-        raise ConfigError(f"config fit.noise_model: expected ols, ar1 or arp, found {noise!r}")
+        raise ConfigError(f"config fit.autocorrelation: expected ols, ar1 or arp, found {noise!r}")
     try:
         gm = float(p.get("grand_mean_value", 100.0))
         order = int(p.get("ar_order", 1))
@@ -96,7 +96,7 @@ def check_params(params: Mapping[str, Any]) -> FitSettings:
         raise ConfigError(f"config fit.ar_bin_width: expected a number in (0, 0.1], found {width}")
     if not (tr > 0 and np.isfinite(tr)):
         raise ConfigError(f"config repetition_time_s: expected a positive number of seconds, found {tr}")
-    return FitSettings(scaling=scaling, grand_mean_value=gm, noise_model=noise,
+    return FitSettings(scaling=scaling, grand_mean_value=gm, autocorrelation=noise,
                        ar_order=order if noise == "arp" else 1, ar_smoothing_fwhm_mm=fwhm, ar_bin_width=width,
                        repetition_time_s=tr)
 
@@ -247,7 +247,7 @@ def fit_voxels(Y: npt.NDArray[np.floating], columns: npt.NDArray[np.integer], fa
     """
     v = columns.size
     n, p = design.X.shape
-    model = settings.noise_model
+    model = settings.autocorrelation
     max_lag = order if model == "arp" else 1
     starts = range(0, v, chunk)
 
@@ -399,7 +399,7 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
             check_repetition_time(bold, settings.repetition_time_s)
             design = est.prepare_design(design_in.X, design_in.roles)
             order = 1
-            if settings.noise_model == "arp":
+            if settings.autocorrelation == "arp":
                 order = est.check_ar_order(design, settings.ar_order)
                 if order < settings.ar_order:
                     import warnings
@@ -425,7 +425,7 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
         timing["fit"] = extra.pop("timing_s_fit")
     timing["total_before_write"] = round(t_fit_end - t_start, 3)
     record = build_record_precomputed(params, in_paths, {"bold": sha} if sha else {}, list(seen), **extra)
-    fit.attrs.update({"noise_model": settings.noise_model, "scaling": settings.scaling,
+    fit.attrs.update({"autocorrelation": settings.autocorrelation, "scaling": settings.scaling,
                       "repetition_time_s": settings.repetition_time_s})
     # --- write: sidecar first, then the fit, then the QC maps ----------------------------------------
     provenance.write_sidecar(outputs["fit"], record, timing_s=timing)
@@ -471,7 +471,7 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: Des
                     dof=np.full(columns.size, design.dof, dtype=np.float32), ar_coef=vf.ar_coef, bin=vf.bin,
                     bin_covariance=vf.bin_covariance, bin_rho=vf.bin_rho, mean_image=mean_image, excluded=False,
                     attrs={"status_counts": counts, "ar_order": int(vf.order), "rank": int(design.rank)})
-    extra = {"excluded": False, "voxel_counts": counts, "noise_model": settings.noise_model,
+    extra = {"excluded": False, "voxel_counts": counts, "autocorrelation": settings.autocorrelation,
              "ar_order": int(vf.order), "dof": int(design.dof), "rank": int(design.rank),
              "n_bins": int(vf.bin_rho.size), "n_volumes_fitted": int(design.X.shape[0]),
              "n_censored": int(design.censored.sum()),
@@ -492,7 +492,7 @@ def _excluded_fit(design_in: DesignInput, bold: Any, settings: FitSettings) -> t
                     bin_covariance=np.zeros((0, p, p)), bin_rho=np.zeros(0),
                     mean_image=np.full(shape3, np.nan, dtype=np.float32), excluded=True,
                     attrs={"status_counts": {}})
-    extra = {"excluded": True, "noise_model": settings.noise_model, "voxel_counts": {}, "n_bins": 0, "dof": None}
+    extra = {"excluded": True, "autocorrelation": settings.autocorrelation, "voxel_counts": {}, "n_bins": 0, "dof": None}
     return fit, extra
 
 
@@ -501,7 +501,7 @@ def _qc_values(fit: StoredFit, lag1: np.ndarray | None) -> dict[str, tuple[np.nd
         none = (np.zeros(0, dtype=np.float32), np.zeros(0, dtype=np.int64))
         return {"mean": none, "residual_sd": none, "ar_coef": none}
     finite_mean = np.flatnonzero(np.isfinite(fit.mean_image.ravel()))
-    ar = fit.ar_coef[:, 0] if fit.attrs.get("noise_model") != "ols" or lag1 is None else lag1
+    ar = fit.ar_coef[:, 0] if fit.attrs.get("autocorrelation") != "ols" or lag1 is None else lag1
     return {"mean": (fit.mean_image.ravel()[finite_mean], finite_mean),
             "residual_sd": (np.sqrt(fit.residual_variance), fit.voxel_index),
             "ar_coef": (ar, fit.voxel_index)}
