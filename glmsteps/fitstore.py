@@ -21,6 +21,8 @@ from .fileio import atomic_path
 
 #: Version tag of the layout, stored as a root attribute.
 LAYOUT_VERSION = 1
+#: HDF5 filter of the per-voxel datasets ("lzf" or None; chosen by ``tests/benchmarks/bench_fit.py``).
+COMPRESSION: str | None = "lzf"
 #: Voxels per HDF5 chunk of per-voxel datasets.
 _CHUNK_VOXELS = 16384
 #: Root attributes copied from the provenance record.
@@ -87,7 +89,8 @@ def _voxel_dataset(group: Any, name: str, data: np.ndarray, voxel_axis: int) -> 
         return
     chunks = list(data.shape)
     chunks[voxel_axis] = min(data.shape[voxel_axis], _CHUNK_VOXELS)
-    group.create_dataset(name, data=data, chunks=tuple(chunks), compression="lzf", shuffle=True)
+    group.create_dataset(name, data=data, chunks=tuple(chunks), compression=COMPRESSION,
+                         shuffle=COMPRESSION is not None)
 
 
 def _strings(group: Any, name: str, values: list[str]) -> None:

@@ -253,20 +253,38 @@ def fit_voxels(Y: npt.NDArray[np.floating], columns: npt.NDArray[np.integer], fa
 
     def block(s: int) -> tuple[slice, npt.NDArray[np.float64]]:
         sl = slice(s, min(s + chunk, v))
-        return sl, np.asarray(Y[:, columns[sl]], dtype=np.float64) * factors[sl]
+        cols = columns[sl]
+        # nearly always the fitted columns of a chunk are contiguous: slice instead of gathering
+        data = Y[:, cols[0]:cols[-1] + 1] if cols[-1] - cols[0] + 1 == cols.size else Y[:, cols]
+        return sl, np.multiply(data, factors[sl], dtype=np.float64)
 
-    lag = np.empty((max_lag + 1, v))
     beta = np.empty((p, v), dtype=np.float32)
     resvar = np.empty(v, dtype=np.float32)
+    if model == "ar1":
+        # AR(1): keep the OLS sufficient statistics, so the refit needs no second pass over the data
+        lag_design_products = np.empty((p, v), dtype=np.float32)
+        ends = np.empty((4, v))                          # e_first, e_last, e0, e1
+        y_censored = np.empty((design.spike_rows.size, v))
+    else:
+        lag = np.empty((max_lag + 1, v))
     t0 = time.perf_counter()
     for s in starts:
         sl, Yc = block(s)
         ols = est.fit_ols(design, Yc)
-        lag[:, sl] = est.compute_lag_products(ols.residuals, max_lag)
+        if model == "ar1":
+            summ = est.summarise_residuals(design, ols.residuals)
+            beta[:, sl] = ols.beta
+            lag_design_products[:, sl] = summ.lag_design_products
+            ends[:, sl] = (summ.e_first, summ.e_last, summ.e0, summ.e1)
+            y_censored[:, sl] = Yc[design.spike_rows]
+        else:
+            lag[:, sl] = est.compute_lag_products(ols.residuals, max_lag)
         if model == "ols":
             beta[:, sl] = ols.beta
             resvar[sl] = ols.residual_variance
         _log_progress("fit pass 1 (OLS)", sl.stop, v, t0)
+    if model == "ar1":
+        lag = np.stack([ends[2], 2.0 * ends[3]])
     if model == "arp":
         acf = est.correct_autocorrelation(lag, est.compute_bias_matrix(design.X, max_lag))
     else:
@@ -300,11 +318,13 @@ def fit_voxels(Y: npt.NDArray[np.floating], columns: npt.NDArray[np.integer], fa
         bins = est.prepare_bins(design, bin_rho, bin_acf)
     t0 = time.perf_counter()
     for s in starts:
-        sl, Yc = block(s)
         if model == "ar1":
-            ols = est.fit_ols(design, Yc)
-            w = est.fit_ar1_block(design, Yc, ols, bin_index[sl], bins)
+            sl = slice(s, min(s + chunk, v))
+            summ = est.Ar1Summary(lag_design_products=lag_design_products[:, sl], e_first=ends[0, sl],
+                                  e_last=ends[1, sl], e0=ends[2, sl], e1=ends[3, sl])
+            w = est.fit_ar1_summary(design, beta[:, sl], summ, y_censored[:, sl], bin_index[sl], bins)
         else:
+            sl, Yc = block(s)
             w = est.fit_arp_block(design, Yc, bin_index[sl], bins)
         beta[:, sl] = w.beta
         resvar[sl] = w.residual_variance
