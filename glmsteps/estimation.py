@@ -477,8 +477,7 @@ def compute_ar1_correction(X: npt.ArrayLike, step: float = 0.001) -> Ar1Correcti
     t0 = diagonal_sums(R)
     t1 = diagonal_sums(RDR)
     rho = np.arange(-MAX_ABS_RHO, MAX_ABS_RHO + step / 2, step)
-    powers = rho[:, None] ** np.arange(n)[None, :]
-    ratio = (powers @ t1) / (powers @ t0)
+    ratio = np.polynomial.polynomial.polyval(rho, t1) / np.polynomial.polynomial.polyval(rho, t0)
     # keep the monotone part (the ratio increases with rho for any design with residual dof > 1)
     ratio = np.maximum.accumulate(ratio)
     return Ar1Correction(rho_grid=rho, ratio_grid=ratio)
@@ -631,11 +630,13 @@ def smooth_within_mask(values: npt.NDArray[np.floating], mask: npt.NDArray[np.bo
     if fwhm_mm <= 0:
         return vals
     sigma = fwhm_mm / math.sqrt(8.0 * math.log(2.0)) / np.asarray(voxel_size_mm, dtype=np.float64)
-    num = ndimage.gaussian_filter(vals, sigma, mode="constant", cval=0.0)
-    den = ndimage.gaussian_filter(m.astype(np.float64), sigma, mode="constant", cval=0.0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out = np.where(m & (den > 0), num / den, 0.0)
-    return out
+    # filtered in place (scipy.ndimage buffers each line), to keep whole-grid temporaries to two
+    ndimage.gaussian_filter(vals, sigma, mode="constant", cval=0.0, output=vals)
+    den = m.astype(np.float64)
+    ndimage.gaussian_filter(den, sigma, mode="constant", cval=0.0, output=den)
+    np.divide(vals, den, out=vals, where=m & (den > 0))
+    vals[~m] = 0.0
+    return vals
 
 
 def assign_bins(rho: npt.ArrayLike, bin_width: float = 0.01) -> tuple[npt.NDArray[np.int32], FloatArray]:

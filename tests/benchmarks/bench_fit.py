@@ -40,6 +40,7 @@ sys.path.insert(0, str(ROOT))
 N_VOL = 300
 TR_S = 2.0
 CASES = {"small": (64, 64, 40), "large": (97, 115, 97)}
+BLAS_THREADS = "1"
 
 
 # --------------------------------------------------------------------------- data generation
@@ -180,8 +181,10 @@ def child_compression(fit_path: str, out: str) -> dict:
 
 
 def run_child(*args: str) -> dict:
-    proc = subprocess.run([sys.executable, str(HERE), "--child", *args], capture_output=True, text=True,
-                          env={**os.environ, "PYTHONPATH": str(ROOT)})
+    # One BLAS thread, as Snakemake gives a threads=1 job (it sets OPENBLAS_NUM_THREADS and friends
+    # to the job's threads); with the default (all cores) BLAS threads fight over a shared machine.
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "OPENBLAS_NUM_THREADS": BLAS_THREADS, "OMP_NUM_THREADS": BLAS_THREADS}
+    proc = subprocess.run([sys.executable, str(HERE), "--child", *args], capture_output=True, text=True, env=env)
     if proc.returncode:
         sys.stderr.write(proc.stderr)
         raise SystemExit(f"child {args[0]} failed")
@@ -197,7 +200,10 @@ def main() -> None:
     ap.add_argument("--keep", action="store_true", help="keep the generated runs")
     ap.add_argument("--sample", type=int, default=100, help="voxels in the statsmodels loop")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
+    ap.add_argument("--blas-threads", default="1", help="OPENBLAS_NUM_THREADS of the measured tasks")
     args = ap.parse_args()
+    global BLAS_THREADS
+    BLAS_THREADS = str(args.blas_threads)
     if args.child:
         task, *rest = args.child
         fn = {"fdata": child_fdata, "fit": child_fit, "statsmodels": child_statsmodels,
