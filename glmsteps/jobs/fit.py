@@ -25,6 +25,7 @@ from __future__ import annotations
 import logging
 import os
 import time
+import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -35,7 +36,7 @@ import numpy.typing as npt
 from .. import estimation as est
 from .. import provenance
 from ..bids import parse_run_id
-from ..errors import ConfigError, DataError, DesignError
+from ..errors import ConfigError, DataError, DesignError, GlmstepsWarning
 from ..fileio import read_json, read_tsv
 from ..fitstore import StoredFit, write_fit
 from ..maps import save_map
@@ -432,9 +433,6 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
             if settings.noise_model == "arp":
                 order = est.check_ar_order(design, settings.ar_order)
                 if order < settings.ar_order:
-                    import warnings
-
-                    from ..errors import GlmstepsWarning
                     warnings.warn(f"{in_paths['design']}: AR({settings.ar_order}) does not fit a design with "
                                   f"{design.dof} residual degrees of freedom; using AR({order})",
                                   GlmstepsWarning, stacklevel=2)
