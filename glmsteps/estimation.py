@@ -60,8 +60,6 @@ from typing import Literal, Sequence
 
 import numpy as np
 import numpy.typing as npt
-from scipy import ndimage
-from scipy.linalg import cholesky, solve_triangular, toeplitz
 
 from .errors import DesignError, GlmstepsWarning
 
@@ -625,6 +623,10 @@ def smooth_within_mask(values: npt.NDArray[np.floating], mask: npt.NDArray[np.bo
     and differential convolution", CVPR), so that values near the mask edge are
     averaged over the mask only and not pulled toward zero.
     """
+    # imported here, not at module level: the fit job then loads scipy only after it has
+    # released the BOLD data, which keeps its peak memory ~17 MB lower (tests/benchmarks/README.md)
+    from scipy import ndimage
+
     m = np.asarray(mask, dtype=bool)
     vals = np.where(m, np.asarray(values, dtype=np.float64), 0.0)
     if fwhm_mm <= 0:
@@ -730,6 +732,8 @@ def whiten_ar(Z: npt.NDArray[np.floating], phi: npt.ArrayLike, innovation_varian
     Prais-Winsten transform, ``u_1 = sqrt(1 - rho^2) z_1`` (Prais & Winsten
     (1954), Cowles Commission discussion paper 383).
     """
+    from scipy.linalg import cholesky, solve_triangular, toeplitz  # lazily, see smooth_within_mask
+
     Z = np.asarray(Z, dtype=np.float64)
     phi = np.asarray(phi, dtype=np.float64)
     q = phi.size
