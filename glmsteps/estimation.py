@@ -787,6 +787,8 @@ class NoiseBins:
         ``pinv(Xw' Xw)`` of each bin's whitened design.
     pinv : ndarray, shape (n_bins, n_regressors, n_scans)
         ``pinv(Xw)``.
+    whitened_design : ndarray, shape (n_bins, n_scans, n_regressors)
+        ``Xw`` of each bin.
     """
 
     rho: FloatArray
@@ -796,6 +798,7 @@ class NoiseBins:
     order: npt.NDArray[np.int64]
     covariance: FloatArray
     pinv: FloatArray
+    whitened_design: FloatArray
 
 
 def prepare_bins(design: DesignFactors, bin_rho: npt.ArrayLike,
@@ -826,13 +829,15 @@ def prepare_bins(design: DesignFactors, bin_rho: npt.ArrayLike,
     acf_head = np.zeros((bin_rho.size, order))
     covs = np.empty((bin_rho.size, p, p))
     pinvs = np.empty((bin_rho.size, p, n))
+    designs = np.empty((bin_rho.size, n, p))
     for b in range(bin_rho.size):
         q = int(used[b])
         r = autocorrelation_of_ar(phi[b, :q], order)
         acf_head[b] = r
-        Xw = whiten_ar(design.X, phi[b, :q], float(err[b]), r[:q])
-        pinvs[b], covs[b] = whitened_covariance(Xw)
-    return NoiseBins(rho=bin_rho, phi=phi, innovation_variance=err, acf=acf_head, order=used, covariance=covs, pinv=pinvs)
+        designs[b] = whiten_ar(design.X, phi[b, :q], float(err[b]), r[:q])
+        pinvs[b], covs[b] = whitened_covariance(designs[b])
+    return NoiseBins(rho=bin_rho, phi=phi, innovation_variance=err, acf=acf_head, order=used, covariance=covs,
+                     pinv=pinvs, whitened_design=designs)
 
 
 @dataclass(frozen=True)
@@ -1025,9 +1030,8 @@ def fit_arp_block(design: DesignFactors, Y: npt.NDArray[np.floating], bin_index:
         cols = np.flatnonzero(bin_index == b)
         q = int(bins.order[b])
         Yw = whiten_ar(Y[:, cols], bins.phi[b, :q], float(bins.innovation_variance[b]), bins.acf[b, :q])
-        Xw = whiten_ar(design.X, bins.phi[b, :q], float(bins.innovation_variance[b]), bins.acf[b, :q])
         bb = multiply_columns(bins.pinv[b], Yw)
-        res = Yw - multiply_columns(Xw, bb)
+        res = Yw - multiply_columns(bins.whitened_design[b], bb)
         beta[:, cols] = bb
         rss[cols] = np.einsum("tv,tv->v", res, res)
     _settle_spikes(design, Y[design.spike_rows], beta)
