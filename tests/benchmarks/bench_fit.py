@@ -128,7 +128,7 @@ def child_fit(inputs_json: str, out: str) -> dict:
     from glmsteps.jobs import fit as job
 
     inputs = json.loads(inputs_json)
-    outputs = {k: str(Path(out) / f"{k if k != 'fit' else 'fit'}{'.h5' if k == 'fit' else '.nii.gz'}")
+    outputs = {k: str(Path(out) / (k + (".h5" if k == "fit" else ".nii.gz")))
                for k in ("fit", "mean", "residual_sd", "ar_coef")}
     params = {"scaling": "percent", "grand_mean_value": 100.0, "noise_model": "ar1", "ar_order": 1,
               "ar_smoothing_fwhm_mm": 5.0, "ar_bin_width": 0.01, "repetition_time_s": TR_S}
@@ -144,7 +144,6 @@ def child_statsmodels(inputs_json: str, sample: int) -> dict:
     import statsmodels.api as sm
     from scipy.linalg import toeplitz
 
-    from glmsteps.fitstore import read_fit
     from glmsteps.volumes import read_bold_header, read_mask, stream_masked
 
     inputs = json.loads(inputs_json)
