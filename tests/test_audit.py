@@ -125,19 +125,19 @@ def test_audit_lists_every_step_and_raw_input_once(tmp_path: Path) -> None:
     assert contrast is not None and contrast.outputs == [f"{RUN}/contrast-a/effect.nii.gz",
                                                           f"{RUN}/contrast-a/variance.nii.gz"]
     # settings in plain words, hashes in the short form
-    assert "settings: repetition time: 2 s; noise model: ar1; smoothing of AR coefficients: 0 mm FWHM" in text
+    assert "settings: repetition time: 2 s; autocorrelation model: ar1; smoothing of AR coefficients: 0 mm FWHM" in text
     assert f"params {chain.top.params_hash[:12]}  lineage {chain.top.lineage_hash[:12]}" in text
     assert chain.top.lineage_hash not in text
 
 
 def test_plain_words_known_and_unknown_keys() -> None:
-    # reference: the wording asked for in issue 7 ("noise model: ar1; smoothing of AR coefficients: 0 mm FWHM")
+    # plain-word rendering of the settings (our own label table, glmsteps.audit.SETTING_LABELS)
     words = audit.describe_params({"autocorrelation": "ar1", "ar_smoothing_fwhm_mm": 0})
-    assert "; ".join(words) == "noise model: ar1; smoothing of AR coefficients: 0 mm FWHM"
+    assert "; ".join(words) == "autocorrelation model: ar1; smoothing of AR coefficients: 0 mm FWHM"
     # unknown keys fall back to the key itself; nested sections get dotted keys
     assert audit.describe_params({"frobnicate_level": 3}) == ["frobnicate_level: 3"]
     assert audit.describe_params({"fit": {"autocorrelation": "ols"}, "skip_nonestimable": True}) == [
-        "skip contrasts that are not estimable: yes", "fit noise model: ols"]
+        "skip runs where the contrast is not estimable: yes", "fit autocorrelation model: ols"]
 
 
 def test_json_round_trips_with_full_hashes(tmp_path: Path) -> None:
@@ -289,7 +289,7 @@ def test_diff_names_the_one_changed_setting(tmp_path: Path, capsys: pytest.Captu
     assert result.inputs == [] and result.structure == []
     code, out, _ = run_cli(capsys, "diff", a, b)
     assert code == 1
-    assert f"fit ({RUN}/fit.h5)  autocorrelation (noise model): ar1 | ols" in out
+    assert f"fit ({RUN}/fit.h5)  autocorrelation (autocorrelation model): ar1 | ols" in out
 
 
 def test_diff_names_a_changed_raw_input(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

@@ -130,7 +130,7 @@ def child_fit(inputs_json: str, out: str) -> dict:
     inputs = json.loads(inputs_json)
     outputs = {k: str(Path(out) / (k + (".h5" if k == "fit" else ".nii.gz")))
                for k in ("fit", "mean", "residual_sd", "ar_coef")}
-    params = {"scaling": "percent", "grand_mean_value": 100.0, "noise_model": "ar1", "ar_order": 1,
+    params = {"scaling": "percent", "grand_mean_value": 100.0, "autocorrelation": "ar1", "ar_order": 1,
               "ar_smoothing_fwhm_mm": 5.0, "ar_bin_width": 0.01, "repetition_time_s": TR_S}
     t0 = time.perf_counter()
     job.run(inputs, outputs, params, {"subject": "01", "run_id": "task-a_run-1"}, threads=1)
