@@ -18,6 +18,7 @@ from pathlib import Path
 import yaml
 
 REPO = Path(__file__).resolve().parents[2]
+EXTRA: list[str] = []
 
 
 def make_study(root: Path, n_subjects: int, n_runs: int = 4) -> None:
@@ -58,7 +59,7 @@ def measure(n_subjects: int) -> tuple[float, float, int]:
         cfg.write_text(yaml.safe_dump(make_config(root)))
         env = dict(os.environ, PYTHONPATH=str(REPO))
         cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "Snakefile"), "--directory", tmp,
-               "--configfile", str(cfg), "--dry-run", "--quiet", "rules", "--cores", "2"]
+               "--configfile", str(cfg), "--dry-run", "--quiet", "rules", "--cores", "2"] + EXTRA
         t0 = time.perf_counter()
         proc = subprocess.run(cmd, capture_output=True, text=True, env=env)
         wall = time.perf_counter() - t0
