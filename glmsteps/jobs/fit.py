@@ -37,7 +37,7 @@ from .. import estimation as est
 from .. import provenance
 from ..bids import parse_run_id
 from ..errors import ConfigError, DataError, DesignError, GlmstepsWarning
-from ..fileio import read_json, read_tsv
+from ..fileio import read_json, read_numeric_tsv
 from ..fitstore import StoredFit, write_fit
 from ..maps import save_map
 from ..volumes import check_grid, check_repetition_time, read_bold_header, read_mask, stream_masked
@@ -165,16 +165,12 @@ def read_design(design_path: str, summary_path: str) -> DesignInput:
     if len(roles) != len(names):
         raise DataError(f"{summary_path}: {len(names)} names but {len(roles)} roles; rerun build_design")
     try:
-        table = read_tsv(design_path)
+        columns, X = read_numeric_tsv(design_path)
     except (OSError, ValueError) as exc:
-        raise DataError(f"{design_path}: cannot read design TSV ({exc}); rerun build_design") from exc
-    if list(table.columns) != names:
-        raise DataError(f"{design_path}: columns {list(table.columns)[:6]}... do not match the summary names "
+        raise DataError(f"{design_path}: cannot read design TSV as numbers ({exc}); rerun build_design") from exc
+    if columns != names:
+        raise DataError(f"{design_path}: columns {columns[:6]}... do not match the summary names "
                         f"{names[:6]}... of {summary_path}; rerun build_design")
-    try:
-        X = table.to_numpy(dtype=np.float64)
-    except (TypeError, ValueError) as exc:
-        raise DataError(f"{design_path}: a column is not numeric ({exc}); rerun build_design") from exc
     bad = np.argwhere(~np.isfinite(X))
     if bad.size:
         r, c = bad[0]
