@@ -2,6 +2,7 @@
 # Every params helper returns exactly the settings its step uses (and nothing broader), so
 # that Snakemake's params trigger reruns precisely what a config edit affects.
 
+import functools
 import os
 import re
 import sys
@@ -165,6 +166,30 @@ def subject_variances(wildcards):
 
 
 # ---------------------------------------------------------------- params (one helper per step)
+def canonical(value):
+    """Params in a canonical form: mappings with sorted keys, all the way down.
+
+    Snakemake compares a job's params with the recorded ones as text, so the key order of
+    the config file must not matter: reordering keys must not trigger reruns.
+    """
+    if isinstance(value, dict):
+        return {k: canonical(value[k]) for k in sorted(value)}
+    if isinstance(value, (list, tuple)):
+        return [canonical(v) for v in value]
+    return value
+
+
+def _canonical_params(helper):
+    """Wrap a params helper so that its result is canonical (signature kept for Snakemake)."""
+
+    @functools.wraps(helper)
+    def wrapped(*args, **kwargs):
+        return canonical(helper(*args, **kwargs))
+
+    return wrapped
+
+
+@_canonical_params
 def events_params():
     """validate_events: the condition column, modulator columns and TR."""
     modulators = sorted({c for cols in config["events"]["modulators"].values() for c in cols})
@@ -172,12 +197,14 @@ def events_params():
             "repetition_time_s": config["acquisition"]["repetition_time_s"]}
 
 
+@_canonical_params
 def confounds_params():
     """select_confounds: the whole confounds section (selection, expansion, censoring)."""
     section = dict(config["confounds"])
     return section
 
 
+@_canonical_params
 def design_params():
     """build_design: HRF, drift, timing and condition settings."""
     d = config["design"]
@@ -190,6 +217,7 @@ def design_params():
             "modulators": {k: list(v) for k, v in config["events"]["modulators"].items()}}
 
 
+@_canonical_params
 def fit_params():
     """fit: scaling and noise model (chunk size and threads do not change results)."""
     f = config["fit"]
@@ -204,11 +232,13 @@ def _contrast_params(name):
             "skip_nonestimable": config["contrast_options"]["skip_nonestimable"]}
 
 
+@_canonical_params
 def contrast_params(wildcards):
     """contrast (t or F): this contrast's definition only."""
     return _contrast_params(wildcards.contrast)
 
 
+@_canonical_params
 def combine_params(wildcards):
     """combine_runs: the contrast's name and tail."""
     return {"name": wildcards.contrast, "tail": CONTRASTS[wildcards.contrast].get("tail", "two-sided")}
@@ -229,14 +259,17 @@ def _threshold_params(level, name):
     return {"name": name, "method": setting["method"], **{k: setting[k] for k in keys}}
 
 
+@_canonical_params
 def run_threshold_params(wildcards):
     return _threshold_params("run", wildcards.threshold)
 
 
+@_canonical_params
 def subject_threshold_params(wildcards):
     return _threshold_params("subject", wildcards.threshold)
 
 
+@_canonical_params
 def group_threshold_params(wildcards):
     return _threshold_params("group", wildcards.threshold)
 
@@ -248,6 +281,7 @@ _GROUP_MODEL_KEYS = ("design", "covariates", "site_column", "site_as_covariate",
                      "mask_fraction")
 
 
+@_canonical_params
 def group_model_params(wildcards):
     """group_model: the model's settings for its design and this job's group contrast only."""
     spec = GROUP_MODELS[wildcards.model]
@@ -257,6 +291,7 @@ def group_model_params(wildcards):
                          "weights": dict(spec["group_contrasts"][wildcards.group_contrast])}}
 
 
+@_canonical_params
 def group_permutation_params(wildcards):
     """group_permutation: the model, the group contrast and the permutation settings."""
     return {**group_model_params(wildcards), "permutation": dict(GROUP_MODELS[wildcards.model]["permutation"])}
