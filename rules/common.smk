@@ -1,6 +1,9 @@
 # Helpers that turn the validated config into targets, input paths and per-step params.
 # Every params helper returns exactly the settings its step uses (and nothing broader), so
-# that Snakemake's params trigger reruns precisely what a config edit affects.
+# that Snakemake's params trigger reruns precisely what a config edit affects. Rules pass
+# them as ONE param, `settings` (a mapping with sorted keys): Snakemake records params as a
+# set of value strings, so two booleans swapping values between separate params would go
+# unnoticed, while the text of the whole mapping names every key.
 
 import functools
 import os
