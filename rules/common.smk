@@ -59,6 +59,8 @@ CONTRASTS = config["contrasts"]
 T_CONTRASTS = [name for name, spec in CONTRASTS.items() if "weights" in spec]
 F_CONTRASTS = [name for name, spec in CONTRASTS.items() if "rows" in spec]
 THRESHOLDS = config["thresholds"]
+#: Write run-level contrast maps (and threshold them)? Subject maps never need them.
+RUN_MAPS = config["contrast_options"]["run_maps"]
 GROUP_MODELS = config["group_models"]
 _check_names("contrast", CONTRASTS)
 for _level in ("run", "subject", "group"):
@@ -132,18 +134,9 @@ def runs_of(subject):
     return [r.run_id for r in RUNS_OF_SUBJECT[subject]]
 
 
-def run_maps_of(wildcards, stat):
-    """One subject's run-level maps of a t contrast (one per run)."""
-    return [f"{OUT}/sub-{wildcards.subject}/{rid}/contrast-{wildcards.contrast}/{stat}.nii.gz"
-            for rid in runs_of(wildcards.subject)]
-
-
-def run_effects(wildcards):
-    return run_maps_of(wildcards, "effect")
-
-
-def run_variances(wildcards):
-    return run_maps_of(wildcards, "variance")
+def subject_fits(wildcards):
+    """A subject's run fits (fit.h5), in run order."""
+    return [f"{OUT}/sub-{wildcards.subject}/{rid}/fit.h5" for rid in runs_of(wildcards.subject)]
 
 
 def subject_underlay(wildcards):
@@ -241,12 +234,6 @@ def contrast_params(wildcards):
     return _contrast_params(wildcards.contrast)
 
 
-@_canonical_params
-def combine_params(wildcards):
-    """combine_runs: the contrast's name and tail."""
-    return {"name": wildcards.contrast, "tail": CONTRASTS[wildcards.contrast].get("tail", "two-sided")}
-
-
 _THRESHOLD_KEYS = {
     "uncorrected": ("p", "min_cluster_voxels", "connectivity", "tail"),
     "fdr": ("q", "connectivity", "tail"),
@@ -336,8 +323,8 @@ def run_targets():
     targets = []
     for r in RUNS:
         base = f"{OUT}/sub-{r.subject}/{r.run_id}"
-        targets += [f"{base}/design_correlation.png", f"{base}/confounds.png"]
-        for name in CONTRASTS:
+        targets += [f"{base}/design_correlation.png", f"{base}/confounds.png", f"{base}/fit.h5"]
+        for name in CONTRASTS if RUN_MAPS else []:
             targets.append(f"{base}/contrast-{name}/z.nii.gz")
             targets += [f"{base}/contrast-{name}/threshold-{t}/clusters.tsv" for t in THRESHOLDS["run"]]
     return targets
@@ -371,7 +358,7 @@ def group_targets():
 def indexed_maps():
     """Every statistical map that index.tsv lists."""
     maps = []
-    for r in RUNS:
+    for r in RUNS if RUN_MAPS else []:
         base = f"{OUT}/sub-{r.subject}/{r.run_id}"
         for name in T_CONTRASTS:
             maps += [f"{base}/contrast-{name}/{s}.nii.gz" for s in ("effect", "variance", "t", "z", "p")]
