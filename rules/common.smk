@@ -205,7 +205,7 @@ def design_params():
     """build_design: HRF, drift, timing and condition settings."""
     d = config["design"]
     return {"hrf": d["hrf"], "fir_bins": d["fir_bins"], "fir_bin_width_s": d["fir_bin_width_s"],
-            "time_resolution_s": d["time_resolution_s"], "drift_basis": d["drift"]["model"],
+            "time_resolution_s": d["time_resolution_s"], "drift_basis": d["drift"]["basis"],
             "cutoff_s": d["drift"]["cutoff_s"], "legendre_order": d["drift"]["legendre_order"],
             "repetition_time_s": config["acquisition"]["repetition_time_s"],
             "volume_time_fraction": config["acquisition"]["volume_time_fraction"],
@@ -215,7 +215,7 @@ def design_params():
 
 @_canonical_params
 def fit_params():
-    """fit: scaling and noise model (chunk size and threads do not change results)."""
+    """fit: scaling and autocorrelation model (chunk size and threads do not change results)."""
     f = config["fit"]
     return {"scaling": f["scaling"], "grand_mean_value": f["grand_mean_value"], "autocorrelation": f["autocorrelation"],
             "ar_order": f["ar_order"], "ar_smoothing_fwhm_mm": f["ar_smoothing_fwhm_mm"],
