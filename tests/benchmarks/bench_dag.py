@@ -60,12 +60,18 @@ def measure(n_subjects: int, run_maps: bool) -> tuple[float, float, int]:
         env = dict(os.environ, PYTHONPATH=str(REPO))
         cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "Snakefile"), "--directory", tmp,
                "--configfile", str(cfg), "--dry-run", "--quiet", "rules", "--cores", "2"]
+        rss_file = Path(tmp) / "peak_kb"
+        if Path("/usr/bin/time").exists():  # GNU time: this one command's own peak RSS
+            cmd = ["/usr/bin/time", "-f", "%M", "-o", str(rss_file)] + cmd
         t0 = time.perf_counter()
         proc = subprocess.run(cmd, capture_output=True, text=True, env=env)
         wall = time.perf_counter() - t0
         if proc.returncode != 0:
             raise SystemExit(proc.stdout[-3000:] + proc.stderr[-3000:])
-        peak_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024  # largest child so far
+        if rss_file.exists():
+            peak_mb = int(rss_file.read_text().split()[-1]) / 1024
+        else:  # the largest child so far (an upper bound)
+            peak_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
         total = next((int(line.split()[-1]) for line in proc.stdout.splitlines() if line.startswith("total")), -1)
         return wall, peak_mb, total
 
