@@ -59,46 +59,61 @@ SETTING_LABELS: dict[str, tuple[str, str]] = {
     "modulators": ("parametric modulators", ""),
     "repetition_time_s": ("repetition time", "s"),
     # confounds
-    "columns": ("confound columns", ""),
-    "motion": ("motion regressors", ""),
-    "fd_threshold_mm": ("censoring threshold on framewise displacement", "mm"),
-    "censor_fd_mm": ("censoring threshold on framewise displacement", "mm"),
+    "columns": ("confound columns (names or patterns)", ""),
+    "derivatives": ("add temporal derivatives", ""),
+    "squares": ("add squares", ""),
+    "demean": ("mean-centre confounds", ""),
+    "scale": ("scale confounds to unit SD", ""),
+    "censor.column": ("censoring column", ""),
+    "censor.threshold": ("censor volumes above", ""),
+    "censor.volumes_before": ("also censor volumes before", "volumes"),
+    "censor.volumes_after": ("also censor volumes after", "volumes"),
+    "drop_initial_volumes": ("initial volumes dropped", "volumes"),
     "max_censored_fraction": ("largest fraction of censored volumes", ""),
     # design
-    "conditions": ("conditions", ""),
-    "slice_time_ref": ("slice timing reference (fraction of a repetition)", ""),
-    "hrf": ("HRF model", ""),
-    "basis": ("HRF basis", ""),
-    "drift_model": ("drift model", ""),
-    "high_pass_cutoff_s": ("high-pass cutoff", "s"),
-    "cutoff_s": ("high-pass cutoff", "s"),
-    "drift_order": ("polynomial drift order", ""),
-    "fir_delays": ("FIR delays", "volumes"),
-    "oversampling": ("time oversampling of the convolution", ""),
+    "conditions": ("fixed condition list", ""),
+    "volume_time_fraction": ("time within each repetition a volume stands for (fraction)", ""),
+    "hrf": ("response model", ""),
+    "fir_bins": ("FIR bins", ""),
+    "fir_bin_width_s": ("FIR bin width", "s"),
+    "time_resolution_s": ("convolution time step", "s"),
+    "drift_basis": ("drift basis", ""),
+    "cutoff_s": ("drift cutoff period", "s"),
+    "legendre_order": ("highest Legendre order", ""),
     # fit
-    "noise_model": ("noise model", ""),
+    "scaling": ("signal scaling", ""),
+    "grand_mean_value": ("grand-mean target", ""),
+    "autocorrelation": ("autocorrelation model", ""),
     "ar_order": ("AR order", ""),
     "ar_smoothing_fwhm_mm": ("smoothing of AR coefficients", "mm FWHM"),
-    "ar_fwhm_mm": ("smoothing of AR coefficients", "mm FWHM"),
-    "ar_bins": ("number of AR coefficient bins", ""),
-    "n_bins": ("number of AR coefficient bins", ""),
-    "scaling": ("signal scaling", ""),
-    "smoothing_fwhm_mm": ("spatial smoothing", "mm FWHM"),
-    "fwhm_mm": ("spatial smoothing", "mm FWHM"),
+    "ar_bin_width": ("AR coefficient bin width", ""),
     # contrasts and thresholds
-    "name": ("contrast name", ""),
+    "name": ("name", ""),
     "definition": ("contrast definition", ""),
     "tail": ("tail of the test", ""),
-    "skip_nonestimable": ("skip contrasts that are not estimable", ""),
-    "threshold": ("threshold", ""),
+    "skip_nonestimable": ("skip runs where the contrast is not estimable", ""),
+    "method": ("threshold method", ""),
+    "p": ("voxelwise p", ""),
     "q": ("false discovery rate", ""),
-    "alpha": ("significance level", ""),
-    "cluster_forming_z": ("cluster-forming z", ""),
+    "alpha": ("family-wise error level", ""),
+    "forming_p": ("cluster-forming p", ""),
     "min_cluster_voxels": ("smallest cluster", "voxels"),
+    "connectivity": ("cluster connectivity", "neighbours"),
     # group
-    "model": ("group model", ""),
-    "n_permutations": ("number of permutations", ""),
-    "seed": ("random seed", ""),
+    "design": ("group design", ""),
+    "group_column": ("group column", ""),
+    "pair_column": ("pair column", ""),
+    "covariates": ("covariates", ""),
+    "site_column": ("site column", ""),
+    "site_as_covariate": ("site as a covariate", ""),
+    "estimation": ("group estimation", ""),
+    "harmonise_sites": ("empirical-Bayes site harmonisation", ""),
+    "mask_fraction": ("group mask: fraction of subjects present", ""),
+    "contrast.weights": ("group contrast weights", ""),
+    "permutation.n_permutations": ("number of permutations", ""),
+    "permutation.seed": ("random seed", ""),
+    "permutation.cluster_forming_p": ("cluster-forming p", ""),
+    "permutation.tfce": ("threshold-free cluster enhancement", ""),
 }
 
 
@@ -391,8 +406,8 @@ def flatten_params(params: Mapping[str, Any], prefix: str = "") -> dict[str, Any
 
     Examples
     --------
-    >>> flatten_params({"fit": {"noise_model": "ar1"}, "tail": "two"})
-    {'fit.noise_model': 'ar1', 'tail': 'two'}
+    >>> flatten_params({"fit": {"autocorrelation": "ar1"}, "tail": "two"})
+    {'fit.autocorrelation': 'ar1', 'tail': 'two'}
     """
     flat: dict[str, Any] = {}
     for key, value in params.items():
@@ -453,7 +468,7 @@ def describe_params(params: Mapping[str, Any]) -> list[str]:
 
     Examples
     --------
-    >>> describe_params({"ar_smoothing_fwhm_mm": 0, "noise_model": "ar1"})
+    >>> describe_params({"ar_smoothing_fwhm_mm": 0, "autocorrelation": "ar1"})
     ['noise model: ar1', 'smoothing of AR coefficients: 0 mm FWHM']
     """
     out = []

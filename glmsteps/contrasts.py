@@ -471,7 +471,7 @@ class ContrastMaps:
 MAP_KEYS: dict[str, tuple[str, ...]] = {"t": ("effect", "variance", "t", "z", "p"), "F": ("f", "z", "p")}
 
 
-def compute_contrast(spec: ContrastSpec, X: npt.NDArray[np.floating], names: Sequence[str],
+def evaluate_contrast(spec: ContrastSpec, X: npt.NDArray[np.floating], names: Sequence[str],
                      conditions: Sequence[str], basis: Sequence[str], beta: npt.NDArray[np.floating],
                      residual_variance: npt.NDArray[np.floating], bin: npt.NDArray[np.integer],
                      bin_covariance: npt.NDArray[np.floating], dof: npt.NDArray[np.floating]) -> ContrastMaps:
@@ -509,9 +509,9 @@ def compute_contrast(spec: ContrastSpec, X: npt.NDArray[np.floating], names: Seq
     dof_arr = np.asarray(dof, dtype=np.float64)
     dof_med = float(np.median(dof_arr)) if dof_arr.size else None
     if spec.kind == "t":
-        r = t_contrast(C, beta, residual_variance, bin, bin_covariance, dof, spec.tail)
-        maps = {"effect": r.effect, "variance": r.variance, "t": r.t, "z": r.z, "p": r.p}
+        res = t_contrast(C, beta, residual_variance, bin, bin_covariance, dof, spec.tail)
+        maps = {"effect": res.effect, "variance": res.variance, "t": res.t, "z": res.z, "p": res.p}
         return ContrastMaps("t", C, True, "", eff, maps, None, dof_med)
-    r = f_contrast(C, beta, residual_variance, bin, bin_covariance, dof)
-    dof1 = float(np.nanmax(r.dof1)) if r.dof1.size and np.isfinite(r.dof1).any() else None
-    return ContrastMaps("F", C, True, "", eff, {"f": r.f, "z": r.z, "p": r.p}, dof1, dof_med)
+    fres = f_contrast(C, beta, residual_variance, bin, bin_covariance, dof)
+    dof1 = float(np.nanmax(fres.dof1)) if fres.dof1.size and np.isfinite(fres.dof1).any() else None
+    return ContrastMaps("F", C, True, "", eff, {"f": fres.f, "z": fres.z, "p": fres.p}, dof1, dof_med)

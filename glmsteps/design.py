@@ -26,7 +26,7 @@ import pandas as pd
 from scipy.signal import fftconvolve
 
 from .errors import DesignError, GlmstepsWarning
-from .hrf import HRF_MODELS, HrfModel, hrf_basis
+from .hrf import HRF_MODELS, ResponseModel, hrf_basis
 
 DriftModel = Literal["cosine", "legendre", "none"]
 DRIFT_MODELS: tuple[str, ...] = ("cosine", "legendre", "none")
@@ -70,7 +70,7 @@ class Design:
 # --------------------------------------------------------------------------- timing
 
 
-def frame_times(n_volumes: int, repetition_time_s: float, slice_time_ref: float = 0.5,
+def frame_times(n_volumes: int, repetition_time_s: float, volume_time_fraction: float = 0.5,
                 first_volume: int = 0) -> npt.NDArray[np.float64]:
     """Acquisition times of volumes ``first_volume .. first_volume + n_volumes - 1``.
 
@@ -80,7 +80,7 @@ def frame_times(n_volumes: int, repetition_time_s: float, slice_time_ref: float 
         Number of volumes (>= 1).
     repetition_time_s : float
         TR (seconds, > 0).
-    slice_time_ref : float
+    volume_time_fraction : float
         Reference point within each TR, 0 (start of the volume) to 1 (end).
     first_volume : int
         Index of the first volume (0-based; >= 0).
@@ -92,7 +92,7 @@ def frame_times(n_volumes: int, repetition_time_s: float, slice_time_ref: float 
 
     Notes
     -----
-    t_j = (first_volume + j + slice_time_ref) * TR (common practice: events
+    t_j = (first_volume + j + volume_time_fraction) * TR (common practice: events
     onsets are measured from the start of the first acquired volume).
     """
     if int(n_volumes) != n_volumes or n_volumes < 1:
@@ -100,12 +100,12 @@ def frame_times(n_volumes: int, repetition_time_s: float, slice_time_ref: float 
     if not (np.isfinite(repetition_time_s) and repetition_time_s > 0):
         raise DesignError(f"repetition_time_s={repetition_time_s!r} must be a positive number of seconds; "
                           "set it in the config")
-    if not (np.isfinite(slice_time_ref) and 0.0 <= slice_time_ref <= 1.0):
-        raise DesignError(f"slice_time_ref={slice_time_ref!r} must be between 0 and 1 (fraction of the TR); "
+    if not (np.isfinite(volume_time_fraction) and 0.0 <= volume_time_fraction <= 1.0):
+        raise DesignError(f"volume_time_fraction={volume_time_fraction!r} must be between 0 and 1 (fraction of the TR); "
                           "use 0.5 for the middle of the volume")
     if int(first_volume) != first_volume or first_volume < 0:
         raise DesignError(f"first_volume={first_volume!r} must be a whole number >= 0")
-    return (int(first_volume) + np.arange(int(n_volumes), dtype=np.float64) + float(slice_time_ref)) * float(
+    return (int(first_volume) + np.arange(int(n_volumes), dtype=np.float64) + float(volume_time_fraction)) * float(
         repetition_time_s)
 
 
@@ -327,9 +327,9 @@ def _ordered_conditions(present: Sequence[str], conditions: Sequence[str]) -> li
     return list(conditions)
 
 
-def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: HrfModel = "double_gamma",
+def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: ResponseModel = "double_gamma",
                  dt_s: float = 0.1, fir_bins: int = 0, fir_bin_width_s: float = 0.0,
-                 drift_model: DriftModel = "cosine", cutoff_s: float = 128.0, legendre_order: int = 3,
+                 drift_basis: DriftModel = "cosine", cutoff_s: float = 128.0, legendre_order: int = 3,
                  confounds: pd.DataFrame | None = None, conditions: Sequence[str] = (),
                  modulators: Mapping[str, Sequence[str]] | None = None) -> Design:
     """Assemble the design matrix of one run.
@@ -348,7 +348,7 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Hrf
         FIR bins (``fir`` only).
     fir_bin_width_s : float
         FIR bin width (seconds, ``fir`` only).
-    drift_model : {"cosine", "legendre", "none"}
+    drift_basis : {"cosine", "legendre", "none"}
         Slow drift basis.
     cutoff_s : float
         Cosine drift cutoff period (seconds).
@@ -382,8 +382,8 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Hrf
     ft = _check_frames(frame_times_s)
     if hrf not in HRF_MODELS:
         raise DesignError(f"unknown HRF model {hrf!r}; set design.hrf to one of {', '.join(HRF_MODELS)}")
-    if drift_model not in DRIFT_MODELS:
-        raise DesignError(f"unknown drift model {drift_model!r}; set design.drift_model to one of "
+    if drift_basis not in DRIFT_MODELS:
+        raise DesignError(f"unknown drift model {drift_basis!r}; set design.drift_basis to one of "
                           f"{', '.join(DRIFT_MODELS)}")
     dt = _check_dt(dt_s)
     for col in ("onset", "duration", "condition"):
@@ -465,9 +465,9 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Hrf
             conds.append("")
             basis.append("")
 
-    if drift_model == "cosine":
+    if drift_basis == "cosine":
         drift = cosine_drift(ft, cutoff_s)
-    elif drift_model == "legendre":
+    elif drift_basis == "legendre":
         drift = legendre_drift(ft, legendre_order)
     else:
         drift = np.zeros((n, 0))

@@ -295,7 +295,8 @@ def fit_ols(design: DesignFactors, Y: npt.NDArray[np.floating]) -> OlsBlock:
     """
     Y = np.asarray(Y, dtype=np.float64)
     beta = multiply_columns(design.pinv, Y)
-    residuals = Y - multiply_columns(design.X, beta)
+    residuals = multiply_columns(design.X, beta)
+    np.subtract(Y, residuals, out=residuals)
     residuals[design.censored] = 0.0
     rss = np.einsum("tv,tv->v", residuals, residuals)
     return OlsBlock(beta=beta, residuals=residuals, residual_variance=rss / design.dof)
@@ -468,14 +469,15 @@ def compute_ar1_correction(X: npt.ArrayLike, step: float = 0.001) -> Ar1Correcti
     RD[:, 1:] += R[:, :-1]
     RD[:, :-1] += R[:, 1:]
     RDR = RD @ R
+    lag_of_entry = np.abs(np.subtract.outer(np.arange(n), np.arange(n))).ravel()
+
     def diagonal_sums(A: FloatArray) -> FloatArray:
-        sums = np.array([np.trace(A, offset=k) + (np.trace(A, offset=-k) if k else 0.0) for k in range(n)])
-        return sums
+        # entry k: sum of A over |i - j| = k, i.e. trace(A D_k)
+        return np.bincount(lag_of_entry, weights=A.ravel(), minlength=n)
     t0 = diagonal_sums(R)
     t1 = diagonal_sums(RDR)
     rho = np.arange(-MAX_ABS_RHO, MAX_ABS_RHO + step / 2, step)
-    powers = rho[:, None] ** np.arange(n)[None, :]
-    ratio = (powers @ t1) / (powers @ t0)
+    ratio = np.polynomial.polynomial.polyval(rho, t1) / np.polynomial.polynomial.polyval(rho, t0)
     # keep the monotone part (the ratio increases with rho for any design with residual dof > 1)
     ratio = np.maximum.accumulate(ratio)
     return Ar1Correction(rho_grid=rho, ratio_grid=ratio)
@@ -621,6 +623,8 @@ def smooth_within_mask(values: npt.NDArray[np.floating], mask: npt.NDArray[np.bo
     and differential convolution", CVPR), so that values near the mask edge are
     averaged over the mask only and not pulled toward zero.
     """
+    # imported here, not at module level: the fit job then loads scipy only after it has
+    # released the BOLD data, which keeps its peak memory ~17 MB lower (tests/benchmarks/README.md)
     from scipy import ndimage
 
     m = np.asarray(mask, dtype=bool)
@@ -628,11 +632,13 @@ def smooth_within_mask(values: npt.NDArray[np.floating], mask: npt.NDArray[np.bo
     if fwhm_mm <= 0:
         return vals
     sigma = fwhm_mm / math.sqrt(8.0 * math.log(2.0)) / np.asarray(voxel_size_mm, dtype=np.float64)
-    num = ndimage.gaussian_filter(vals, sigma, mode="constant", cval=0.0)
-    den = ndimage.gaussian_filter(m.astype(np.float64), sigma, mode="constant", cval=0.0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out = np.where(m & (den > 0), num / den, 0.0)
-    return out
+    # filtered in place (scipy.ndimage buffers each line), to keep whole-grid temporaries to two
+    ndimage.gaussian_filter(vals, sigma, mode="constant", cval=0.0, output=vals)
+    den = m.astype(np.float64)
+    ndimage.gaussian_filter(den, sigma, mode="constant", cval=0.0, output=den)
+    np.divide(vals, den, out=vals, where=m & (den > 0))
+    vals[~m] = 0.0
+    return vals
 
 
 def assign_bins(rho: npt.ArrayLike, bin_width: float = 0.01) -> tuple[npt.NDArray[np.int32], FloatArray]:
@@ -726,7 +732,7 @@ def whiten_ar(Z: npt.NDArray[np.floating], phi: npt.ArrayLike, innovation_varian
     Prais-Winsten transform, ``u_1 = sqrt(1 - rho^2) z_1`` (Prais & Winsten
     (1954), Cowles Commission discussion paper 383).
     """
-    from scipy.linalg import cholesky, solve_triangular, toeplitz
+    from scipy.linalg import cholesky, solve_triangular, toeplitz  # lazily, see smooth_within_mask
 
     Z = np.asarray(Z, dtype=np.float64)
     phi = np.asarray(phi, dtype=np.float64)
@@ -781,6 +787,8 @@ class NoiseBins:
         ``pinv(Xw' Xw)`` of each bin's whitened design.
     pinv : ndarray, shape (n_bins, n_regressors, n_scans)
         ``pinv(Xw)``.
+    whitened_design : ndarray, shape (n_bins, n_scans, n_regressors)
+        ``Xw`` of each bin.
     """
 
     rho: FloatArray
@@ -790,6 +798,7 @@ class NoiseBins:
     order: npt.NDArray[np.int64]
     covariance: FloatArray
     pinv: FloatArray
+    whitened_design: FloatArray
 
 
 def prepare_bins(design: DesignFactors, bin_rho: npt.ArrayLike,
@@ -820,13 +829,15 @@ def prepare_bins(design: DesignFactors, bin_rho: npt.ArrayLike,
     acf_head = np.zeros((bin_rho.size, order))
     covs = np.empty((bin_rho.size, p, p))
     pinvs = np.empty((bin_rho.size, p, n))
+    designs = np.empty((bin_rho.size, n, p))
     for b in range(bin_rho.size):
         q = int(used[b])
         r = autocorrelation_of_ar(phi[b, :q], order)
         acf_head[b] = r
-        Xw = whiten_ar(design.X, phi[b, :q], float(err[b]), r[:q])
-        pinvs[b], covs[b] = whitened_covariance(Xw)
-    return NoiseBins(rho=bin_rho, phi=phi, innovation_variance=err, acf=acf_head, order=used, covariance=covs, pinv=pinvs)
+        designs[b] = whiten_ar(design.X, phi[b, :q], float(err[b]), r[:q])
+        pinvs[b], covs[b] = whitened_covariance(designs[b])
+    return NoiseBins(rho=bin_rho, phi=phi, innovation_variance=err, acf=acf_head, order=used, covariance=covs,
+                     pinv=pinvs, whitened_design=designs)
 
 
 @dataclass(frozen=True)
@@ -844,13 +855,16 @@ class WhitenedBlock:
     residual_variance: FloatArray
 
 
-def _settle_spikes(design: DesignFactors, Y: FloatArray, beta: FloatArray) -> None:
-    """Set indicator coefficients so that each censored volume's residual is zero (in place)."""
+def _settle_spikes(design: DesignFactors, y_censored: FloatArray, beta: FloatArray) -> None:
+    """Set indicator coefficients so that each censored volume's residual is zero (in place).
+
+    ``y_censored`` is ``Y[design.spike_rows]``, shape (n_spikes, n_voxels).
+    """
     if not design.spike_rows.size:
         return
     other = ~design.spike_columns
     rows = design.spike_rows
-    beta[design.spike_columns] = Y[rows] - multiply_columns(design.X[np.ix_(rows, other)], beta[other])
+    beta[design.spike_columns] = y_censored - multiply_columns(design.X[np.ix_(rows, other)], beta[other])
 
 
 def _apply_bin_matrices(matrices: FloatArray, bin_index: npt.NDArray[np.integer], Z: FloatArray) -> FloatArray:
@@ -861,17 +875,67 @@ def _apply_bin_matrices(matrices: FloatArray, bin_index: npt.NDArray[np.integer]
     return out
 
 
-def fit_ar1_block(design: DesignFactors, Y: npt.NDArray[np.floating], ols: OlsBlock,
-                  bin_index: npt.NDArray[np.integer], bins: NoiseBins) -> WhitenedBlock:
-    """AR(1)-prewhitened refit of a block of voxels from its OLS fit.
+@dataclass(frozen=True)
+class Ar1Summary:
+    """What the AR(1) refit needs from a block's OLS residuals.
+
+    Attributes
+    ----------
+    lag_design_products : ndarray, shape (n_regressors, n_voxels)
+        ``(D_1 X)' e``.
+    e_first, e_last : ndarray, shape (n_voxels,)
+        Residuals of the first and last scan.
+    e0 : ndarray, shape (n_voxels,)
+        ``sum_t e_t^2``.
+    e1 : ndarray, shape (n_voxels,)
+        ``sum_t e_t e_{t-1}``.
+    """
+
+    lag_design_products: FloatArray
+    e_first: FloatArray
+    e_last: FloatArray
+    e0: FloatArray
+    e1: FloatArray
+
+    @property
+    def lag_products(self) -> FloatArray:
+        """``a_0, a_1`` as returned by :func:`compute_lag_products` (shape (2, n_voxels))."""
+        return np.stack([self.e0, 2.0 * self.e1])
+
+
+def summarise_residuals(design: DesignFactors, residuals: npt.NDArray[np.floating]) -> Ar1Summary:
+    """Per-voxel sufficient statistics of OLS residuals for the AR(1) refit.
 
     Parameters
     ----------
     design : DesignFactors
-    Y : ndarray, shape (n_scans, n_voxels)
-        Scaled signal (used only for the indicator coefficients).
-    ols : OlsBlock
-        OLS fit of the same block.
+    residuals : ndarray, shape (n_scans, n_voxels)
+        OLS residuals (zero at censored volumes).
+
+    Returns
+    -------
+    Ar1Summary
+    """
+    e = np.asarray(residuals, dtype=np.float64)
+    return Ar1Summary(lag_design_products=multiply_columns(design.lag_design.T, e), e_first=e[0].copy(),
+                      e_last=e[-1].copy(), e0=np.einsum("tv,tv->v", e, e),
+                      e1=np.einsum("tv,tv->v", e[1:], e[:-1]))
+
+
+def fit_ar1_summary(design: DesignFactors, beta_ols: npt.NDArray[np.floating], summary: Ar1Summary,
+                    y_censored: npt.NDArray[np.floating], bin_index: npt.NDArray[np.integer],
+                    bins: NoiseBins) -> WhitenedBlock:
+    """AR(1)-prewhitened refit of a block of voxels from its OLS sufficient statistics.
+
+    Parameters
+    ----------
+    design : DesignFactors
+    beta_ols : ndarray, shape (n_regressors, n_voxels)
+        OLS estimates of the block.
+    summary : Ar1Summary
+        From :func:`summarise_residuals` on the block's OLS residuals.
+    y_censored : ndarray, shape (n_spikes, n_voxels)
+        Scaled signal at the censored volumes (``Y[design.spike_rows]``).
     bin_index : ndarray of int, shape (n_voxels,)
         Bin of each voxel.
     bins : NoiseBins
@@ -893,22 +957,48 @@ def fit_ar1_block(design: DesignFactors, Y: npt.NDArray[np.floating], ols: OlsBl
     So each voxel needs only ``(D_1 X)' e``, ``e'e``, the lag-1 product and its
     end residuals; the data are never gathered per bin. This is algebraically
     the refit of ``W y`` on ``W X`` (Prais & Winsten 1954; generalised least
-    squares, e.g. Seber & Lee (2003), sec. 3.10).
+    squares, e.g. Seber & Lee (2003) *Linear Regression Analysis*, sec. 3.10),
+    checked against statsmodels GLS in ``tests/test_estimation.py``.
     """
-    Y = np.asarray(Y, dtype=np.float64)
-    e = ols.residuals
     rho = bins.rho[bin_index]
-    h = multiply_columns(design.lag_design.T, e)
-    ends = np.outer(design.X[0], e[0]) + np.outer(design.X[-1], e[-1])
-    z = -(rho * rho) * ends - rho * h
-    e0 = np.einsum("tv,tv->v", e, e)
-    e1 = np.einsum("tv,tv->v", e[1:], e[:-1])
-    eqe = (1.0 + rho * rho) * e0 - rho * rho * (e[0] ** 2 + e[-1] ** 2) - 2.0 * rho * e1
+    rho2 = rho * rho
+    z = -rho2 * (np.outer(design.X[0], summary.e_first) + np.outer(design.X[-1], summary.e_last))
+    z -= rho * np.asarray(summary.lag_design_products, dtype=np.float64)
+    eqe = ((1.0 + rho2) * summary.e0 - rho2 * (summary.e_first ** 2 + summary.e_last ** 2)
+           - 2.0 * rho * summary.e1)
     delta = _apply_bin_matrices(bins.covariance, bin_index, z)
     rss = eqe - np.einsum("pv,pv->v", z, delta)
-    beta = ols.beta + delta
-    _settle_spikes(design, Y, beta)
+    beta = np.asarray(beta_ols, dtype=np.float64) + delta
+    _settle_spikes(design, np.asarray(y_censored, dtype=np.float64), beta)
     return WhitenedBlock(beta=beta, residual_variance=np.maximum(rss, 0.0) / design.dof)
+
+
+def fit_ar1_block(design: DesignFactors, Y: npt.NDArray[np.floating], ols: OlsBlock,
+                  bin_index: npt.NDArray[np.integer], bins: NoiseBins) -> WhitenedBlock:
+    """AR(1)-prewhitened refit of a block of voxels from its OLS fit.
+
+    Parameters
+    ----------
+    design : DesignFactors
+    Y : ndarray, shape (n_scans, n_voxels)
+        Scaled signal (used only at censored volumes).
+    ols : OlsBlock
+        OLS fit of the same block.
+    bin_index : ndarray of int, shape (n_voxels,)
+    bins : NoiseBins
+        From :func:`prepare_bins` without ``bin_acf``.
+
+    Returns
+    -------
+    WhitenedBlock
+
+    Notes
+    -----
+    :func:`summarise_residuals` then :func:`fit_ar1_summary` (formulas there).
+    """
+    summary = summarise_residuals(design, ols.residuals)
+    Y = np.asarray(Y)
+    return fit_ar1_summary(design, ols.beta, summary, Y[design.spike_rows], bin_index, bins)
 
 
 def fit_arp_block(design: DesignFactors, Y: npt.NDArray[np.floating], bin_index: npt.NDArray[np.integer],
@@ -940,10 +1030,9 @@ def fit_arp_block(design: DesignFactors, Y: npt.NDArray[np.floating], bin_index:
         cols = np.flatnonzero(bin_index == b)
         q = int(bins.order[b])
         Yw = whiten_ar(Y[:, cols], bins.phi[b, :q], float(bins.innovation_variance[b]), bins.acf[b, :q])
-        Xw = whiten_ar(design.X, bins.phi[b, :q], float(bins.innovation_variance[b]), bins.acf[b, :q])
         bb = multiply_columns(bins.pinv[b], Yw)
-        res = Yw - multiply_columns(Xw, bb)
+        res = Yw - multiply_columns(bins.whitened_design[b], bb)
         beta[:, cols] = bb
         rss[cols] = np.einsum("tv,tv->v", res, res)
-    _settle_spikes(design, Y, beta)
+    _settle_spikes(design, Y[design.spike_rows], beta)
     return WhitenedBlock(beta=beta, residual_variance=rss / design.dof)

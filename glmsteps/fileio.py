@@ -14,10 +14,12 @@ import os
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
+
+if TYPE_CHECKING:  # pandas is imported lazily: many steps never read a table
+    import pandas as pd
 
 #: Compound file extensions recognised when naming temporaries and sidecars.
 KNOWN_EXTENSIONS: tuple[str, ...] = (".nii.gz", ".nii", ".tsv", ".json", ".h5", ".png", ".svg", ".html", ".txt")
@@ -100,10 +102,38 @@ def read_tsv(path: str | os.PathLike[str]) -> pd.DataFrame:
     Only ``n/a`` (and empty cells) count as missing, so that a condition called
     ``NA`` or ``null`` survives as text.
     """
+    import pandas as pd
+
     try:
         return pd.read_csv(path, sep="\t", na_values=["n/a", ""], keep_default_na=False)
     except pd.errors.EmptyDataError:  # a table with no columns (e.g. no confounds selected)
         return pd.DataFrame()
+
+
+def read_numeric_tsv(path: str | os.PathLike[str]) -> tuple[list[str], np.ndarray]:
+    """Read an all-numeric TSV with a header row (e.g. a design matrix) without pandas.
+
+    Returns
+    -------
+    names : list of str
+        Column names from the header.
+    values : ndarray, shape (n_rows, n_columns), float64
+        ``n/a`` becomes NaN.
+
+    Raises
+    ------
+    ValueError
+        When a cell is not a number or a row has the wrong number of cells.
+    """
+    with open(path, encoding="utf-8") as handle:
+        header = handle.readline().rstrip("\n").split("\t")
+        rows = [line.rstrip("\n").split("\t") for line in handle if line.strip()]
+    bad = next((i for i, row in enumerate(rows) if len(row) != len(header)), None)
+    if bad is not None:
+        raise ValueError(f"data row {bad + 1} has {len(rows[bad])} cells, the header has {len(header)}")
+    values = np.array([[np.nan if cell == "n/a" else float(cell) for cell in row] for row in rows],
+                      dtype=np.float64).reshape(len(rows), len(header))
+    return header, values
 
 
 def save_nifti(path: str | os.PathLike[str], data: np.ndarray, affine: np.ndarray,

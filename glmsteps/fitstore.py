@@ -1,9 +1,10 @@
 """The per-run HDF5 fit file (layout in DEVELOPERS.md, "HDF5 fit file").
 
-Large per-voxel datasets are chunked along the voxel axis and compressed with
-LZF: on the project's benchmark runs LZF costs next to nothing, while gzip
-costs about 2 s on the large run for a 1.1x smaller file
-(``tests/benchmarks/README.md``).
+Large per-voxel datasets are chunked along the voxel axis and stored without a
+compression filter: on the project's large benchmark run (2026-12-02, see
+``tests/benchmarks/README.md``) writing the fit took 0.22 s uncompressed
+(44 MB), 0.99 s with LZF (32 MB) and 1.30 s with gzip (29 MB); the 1.4x
+smaller file is not worth 10 % of the whole job's time.
 """
 
 from __future__ import annotations
@@ -21,12 +22,14 @@ from .fileio import atomic_path
 
 #: Version tag of the layout, stored as a root attribute.
 LAYOUT_VERSION = 1
+#: HDF5 filter of the per-voxel datasets ("lzf" or None; chosen by ``tests/benchmarks/bench_fit.py``).
+COMPRESSION: str | None = None
 #: Voxels per HDF5 chunk of per-voxel datasets.
 _CHUNK_VOXELS = 16384
 #: Root attributes copied from the provenance record.
 _RECORD_ATTRS = ("step", "params_hash", "lineage_hash", "glmsteps_version")
 #: Root attributes describing the fit (taken from ``StoredFit.attrs``, else the record's params).
-_FIT_ATTRS = ("noise_model", "scaling", "repetition_time_s")
+_FIT_ATTRS = ("autocorrelation", "scaling", "repetition_time_s")
 #: Voxel status counters stored as attributes of ``voxels/status_counts``.
 STATUS_KEYS = ("outside_mask", "non_finite", "zero_variance", "nonpositive_mean", "fitted")
 
@@ -87,7 +90,8 @@ def _voxel_dataset(group: Any, name: str, data: np.ndarray, voxel_axis: int) -> 
         return
     chunks = list(data.shape)
     chunks[voxel_axis] = min(data.shape[voxel_axis], _CHUNK_VOXELS)
-    group.create_dataset(name, data=data, chunks=tuple(chunks), compression="lzf", shuffle=True)
+    group.create_dataset(name, data=data, chunks=tuple(chunks), compression=COMPRESSION,
+                         shuffle=COMPRESSION is not None)
 
 
 def _strings(group: Any, name: str, values: list[str]) -> None:
@@ -149,8 +153,7 @@ def write_fit(path: str | os.PathLike[str], fit: StoredFit, record: dict[str, An
             noise.create_dataset("bin_covariance", data=np.asarray(fit.bin_covariance, dtype=np.float64))
             noise.create_dataset("bin_rho", data=np.asarray(fit.bin_rho, dtype=np.float64))
             images = h5.create_group("images")
-            images.create_dataset("mean", data=np.asarray(fit.mean_image, dtype=np.float32),
-                                  compression="lzf", shuffle=True)
+            images.create_dataset("mean", data=np.asarray(fit.mean_image, dtype=np.float32))
 
 
 def _plain(obj: Any) -> Any:

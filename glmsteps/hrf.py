@@ -31,7 +31,7 @@ from scipy.special import gammaln
 
 from .errors import ConfigError
 
-HrfModel = Literal["double_gamma", "double_gamma_derivative", "double_gamma_dispersion", "glover", "fir"]
+ResponseModel = Literal["double_gamma", "double_gamma_derivative", "double_gamma_dispersion", "glover", "fir"]
 
 #: The accepted ``model`` names of :func:`hrf_basis`.
 HRF_MODELS: tuple[str, ...] = ("double_gamma", "double_gamma_derivative", "double_gamma_dispersion", "glover", "fir")
@@ -223,7 +223,7 @@ def fir_kernels(dt_s: float, n_bins: int, bin_width_s: float) -> npt.NDArray[np.
     return out
 
 
-def hrf_basis(model: HrfModel, dt_s: float, *, fir_bins: int = 0, fir_bin_width_s: float = 0.0,
+def hrf_basis(model: ResponseModel, dt_s: float, *, fir_bins: int = 0, fir_bin_width_s: float = 0.0,
               length_s: float = KERNEL_LENGTH_S) -> tuple[npt.NDArray[np.float64], list[str]]:
     """Sampled kernels of an HRF model.
 

@@ -6,9 +6,13 @@ by volume straight from the (gzipped) file and masked as they arrive into an
 never held in memory. The file's bytes are hashed (sha256) on the way, so the
 provenance record does not need to read the BOLD a second time.
 
-Decompression uses ``isal.igzip_threaded`` when it is installed (measured about
-3x faster than the standard library on this project's runs, and it decompresses
-in a second thread while the main thread masks), else the standard ``gzip``.
+Decompression uses isal when it is installed (measured about 3x faster than the
+standard library's gzip on this project's runs), else the standard ``gzip``. With
+one thread (the default for a job) isal decompresses in the calling thread: on
+this project's shared 2-core machine a background reader thread
+(``isal.igzip_threaded``) was slower (4.8-6.1 s against 4.0-4.2 s for the large
+benchmark run), because the two threads contend for the GIL and the cores; it
+is used when the job has two threads or more.
 """
 
 from __future__ import annotations
@@ -250,11 +254,14 @@ class _HashingReader(io.RawIOBase):
 
 
 def _open_decompressed(raw: io.BufferedReader, threads: int) -> Any:
+    """A decompressing reader: isal (single thread, or a reader thread when ``threads >= 2``), else gzip."""
     try:
-        from isal import igzip_threaded
+        from isal import igzip, igzip_threaded
     except ImportError:  # plain gzip fallback
         return gzip.GzipFile(fileobj=raw, mode="rb")
-    return igzip_threaded.open(raw, "rb", threads=max(1, threads))
+    if threads >= 2:
+        return igzip_threaded.open(raw, "rb", threads=1)
+    return igzip.IGzipFile(fileobj=raw, mode="rb")
 
 
 def _read_exact(stream: Any, view: memoryview, path: str) -> None:
@@ -302,7 +309,7 @@ def stream_masked(bold: BoldHeader, mask: npt.NDArray[np.bool_], first_volume: i
     first_volume : int
         Volumes before this one are read (and hashed) but not kept.
     threads : int
-        Decompression threads (isal only).
+        Threads of the job; with 2 or more, isal decompresses in a reader thread.
 
     Returns
     -------

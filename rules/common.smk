@@ -182,10 +182,10 @@ def design_params():
     """build_design: HRF, drift, timing and condition settings."""
     d = config["design"]
     return {"hrf": d["hrf"], "fir_bins": d["fir_bins"], "fir_bin_width_s": d["fir_bin_width_s"],
-            "time_resolution_s": d["time_resolution_s"], "drift_model": d["drift"]["model"],
+            "time_resolution_s": d["time_resolution_s"], "drift_basis": d["drift"]["model"],
             "cutoff_s": d["drift"]["cutoff_s"], "legendre_order": d["drift"]["legendre_order"],
             "repetition_time_s": config["acquisition"]["repetition_time_s"],
-            "slice_time_ref": config["acquisition"]["slice_time_ref"],
+            "volume_time_fraction": config["acquisition"]["volume_time_fraction"],
             "conditions": list(config["events"]["conditions"]),
             "modulators": {k: list(v) for k, v in config["events"]["modulators"].items()}}
 
@@ -193,7 +193,7 @@ def design_params():
 def fit_params():
     """fit: scaling and noise model (chunk size and threads do not change results)."""
     f = config["fit"]
-    return {"scaling": f["scaling"], "grand_mean_value": f["grand_mean_value"], "noise_model": f["noise_model"],
+    return {"scaling": f["scaling"], "grand_mean_value": f["grand_mean_value"], "autocorrelation": f["autocorrelation"],
             "ar_order": f["ar_order"], "ar_smoothing_fwhm_mm": f["ar_smoothing_fwhm_mm"],
             "ar_bin_width": f["ar_bin_width"], "repetition_time_s": config["acquisition"]["repetition_time_s"]}
 
@@ -241,12 +241,20 @@ def group_threshold_params(wildcards):
     return _threshold_params("group", wildcards.threshold)
 
 
+_GROUP_DESIGN_KEYS = {
+    "one_sample": (), "regression": (), "two_sample": ("group_column",), "paired": ("group_column", "pair_column"),
+}
+_GROUP_MODEL_KEYS = ("design", "covariates", "site_column", "site_as_covariate", "estimation", "harmonise_sites",
+                     "mask_fraction")
+
+
 def group_model_params(wildcards):
-    """group: the model's settings and this job's group contrast (never the permutation settings)."""
+    """group_model: the model's settings for its design and this job's group contrast only."""
     spec = GROUP_MODELS[wildcards.model]
-    keep = {k: v for k, v in spec.items() if k not in ("group_contrasts", "permutation", "contrasts")}
-    return {**keep,
-            "contrast": {"name": wildcards.group_contrast, "weights": dict(spec["group_contrasts"][wildcards.group_contrast])}}
+    keys = _GROUP_MODEL_KEYS + _GROUP_DESIGN_KEYS[spec["design"]]
+    return {**{k: spec[k] for k in keys},
+            "contrast": {"name": wildcards.group_contrast,
+                         "weights": dict(spec["group_contrasts"][wildcards.group_contrast])}}
 
 
 def group_permutation_params(wildcards):

@@ -33,7 +33,7 @@ BOLD_RAW = "data/sub-01/func/sub-01_task-a_run-1_bold.nii"
 TARGET = "out/sub-01/combined/contrast-a/z.nii.gz"
 
 EVENTS_PARAMS = {"condition_column": "trial_type", "modulators": [], "repetition_time_s": 2.0}
-FIT_PARAMS = {"noise_model": "ar1", "ar_smoothing_fwhm_mm": 0.0, "repetition_time_s": 2.0}
+FIT_PARAMS = {"autocorrelation": "ar1", "ar_smoothing_fwhm_mm": 0.0, "repetition_time_s": 2.0}
 CONTRAST_PARAMS = {"name": "a", "definition": {"a": 1.0}, "tail": "two-sided"}
 COMBINE_PARAMS = {"name": "a", "tail": "two-sided"}
 
@@ -125,19 +125,19 @@ def test_audit_lists_every_step_and_raw_input_once(tmp_path: Path) -> None:
     assert contrast is not None and contrast.outputs == [f"{RUN}/contrast-a/effect.nii.gz",
                                                           f"{RUN}/contrast-a/variance.nii.gz"]
     # settings in plain words, hashes in the short form
-    assert "settings: repetition time: 2 s; noise model: ar1; smoothing of AR coefficients: 0 mm FWHM" in text
+    assert "settings: repetition time: 2 s; autocorrelation model: ar1; smoothing of AR coefficients: 0 mm FWHM" in text
     assert f"params {chain.top.params_hash[:12]}  lineage {chain.top.lineage_hash[:12]}" in text
     assert chain.top.lineage_hash not in text
 
 
 def test_plain_words_known_and_unknown_keys() -> None:
-    # reference: the wording asked for in issue 7 ("noise model: ar1; smoothing of AR coefficients: 0 mm FWHM")
-    words = audit.describe_params({"noise_model": "ar1", "ar_smoothing_fwhm_mm": 0})
-    assert "; ".join(words) == "noise model: ar1; smoothing of AR coefficients: 0 mm FWHM"
+    # plain-word rendering of the settings (our own label table, glmsteps.audit.SETTING_LABELS)
+    words = audit.describe_params({"autocorrelation": "ar1", "ar_smoothing_fwhm_mm": 0})
+    assert "; ".join(words) == "autocorrelation model: ar1; smoothing of AR coefficients: 0 mm FWHM"
     # unknown keys fall back to the key itself; nested sections get dotted keys
     assert audit.describe_params({"frobnicate_level": 3}) == ["frobnicate_level: 3"]
-    assert audit.describe_params({"fit": {"noise_model": "ols"}, "skip_nonestimable": True}) == [
-        "skip contrasts that are not estimable: yes", "fit noise model: ols"]
+    assert audit.describe_params({"fit": {"autocorrelation": "ols"}, "skip_nonestimable": True}) == [
+        "skip runs where the contrast is not estimable: yes", "fit autocorrelation model: ols"]
 
 
 def test_json_round_trips_with_full_hashes(tmp_path: Path) -> None:
@@ -236,7 +236,7 @@ def test_stale_and_edited_records_are_reported(tmp_path: Path) -> None:
     # and edit a setting in the fit sidecar by hand, leaving its hashes
     side = base / RUN / "fit.json"
     record = json.loads(side.read_text())
-    record["params"]["noise_model"] = "ols"
+    record["params"]["autocorrelation"] = "ols"
     side.write_text(json.dumps(record))
     chain = audit.load_chain(target)
     checks = audit.verify_chain(chain, lambda p: audit.current_sha256(p, chain.root))
@@ -281,15 +281,15 @@ def test_root_found_from_another_folder_and_given_explicitly(tmp_path: Path, mon
 
 def test_diff_names_the_one_changed_setting(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     a = make_chain(tmp_path / "a")
-    b = make_chain(tmp_path / "b", fit_params={**FIT_PARAMS, "noise_model": "ols"})
+    b = make_chain(tmp_path / "b", fit_params={**FIT_PARAMS, "autocorrelation": "ols"})
     result = audit.diff_chains(audit.load_chain(a), audit.load_chain(b))
     # reference: the single setting changed between the two builds above
     assert result.settings == [audit.SettingDifference("fit", f"{RUN}/fit.h5", f"{RUN}/fit.h5",
-                                                       "noise_model", "ar1", "ols")]
+                                                       "autocorrelation", "ar1", "ols")]
     assert result.inputs == [] and result.structure == []
     code, out, _ = run_cli(capsys, "diff", a, b)
     assert code == 1
-    assert f"fit ({RUN}/fit.h5)  noise_model (noise model): ar1 | ols" in out
+    assert f"fit ({RUN}/fit.h5)  autocorrelation (autocorrelation model): ar1 | ols" in out
 
 
 def test_diff_names_a_changed_raw_input(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

@@ -160,12 +160,12 @@ def test_compute_contrast_not_estimable_gives_nan_maps_and_reason():
     beta, s2, cov, dof = _ols_fit(X, Y)
     names, conds, basis = ["A", "B", "drift_1", "intercept"], ["A", "B", "", ""], ["main", "main", "", ""]
     spec = contrasts.parse_spec("a_vs_b", {"weights": {"A": 1, "B": -1}})
-    out = contrasts.compute_contrast(spec, X, names, conds, basis, beta, s2, np.zeros(6, int), cov[None],
+    out = contrasts.evaluate_contrast(spec, X, names, conds, basis, beta, s2, np.zeros(6, int), cov[None],
                                      np.full(6, dof))
     assert not out.estimable and "'B'" in out.reason
     assert all(np.isnan(m).all() for m in out.maps.values())
     spec = contrasts.parse_spec("a", {"weights": {"A": 1}, "tail": "negative"})
-    out = contrasts.compute_contrast(spec, X, names, conds, basis, beta, s2, np.zeros(6, int), cov[None],
+    out = contrasts.evaluate_contrast(spec, X, names, conds, basis, beta, s2, np.zeros(6, int), cov[None],
                                      np.full(6, dof))
     assert out.estimable and out.efficiency > 0
     # reference: statsmodels OLS t_test, one-sided p on the negative side

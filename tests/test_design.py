@@ -47,10 +47,10 @@ def derivative_bounds() -> tuple[float, float]:
 
 
 def test_frame_times_formula() -> None:
-    # common practice: volume j is referenced at (j + slice_time_ref) * TR
+    # common practice: volume j is referenced at (j + volume_time_fraction) * TR
     np.testing.assert_allclose(gd.frame_times(4, 2.0, 0.5), [1.0, 3.0, 5.0, 7.0])
     np.testing.assert_allclose(gd.frame_times(3, 1.5, 0.0, first_volume=2), [3.0, 4.5, 6.0])
-    with pytest.raises(DesignError, match="slice_time_ref"):
+    with pytest.raises(DesignError, match="volume_time_fraction"):
         gd.frame_times(4, 2.0, 1.5)
     with pytest.raises(DesignError, match="repetition_time_s"):
         gd.frame_times(4, 0.0)
@@ -201,7 +201,7 @@ def test_build_design_columns_roles_and_absent_condition() -> None:
     with pytest.warns(GlmstepsWarning) as caught:
         design = gd.build_design(small_events(), ft, hrf="double_gamma_derivative", confounds=confounds,
                                  conditions=["stop", "go", "rest"], modulators={"go": ["rt"]},
-                                 drift_model="cosine", cutoff_s=100.0)
+                                 drift_basis="cosine", cutoff_s=100.0)
     texts = " | ".join(str(w.message) for w in caught)
     assert "'rest'" in texts and "spike_0001" in texts
     n_drift = gd.cosine_drift_count(90, 2.0, 100.0)
@@ -222,16 +222,16 @@ def test_default_condition_order_is_sorted_and_extra_conditions_warn() -> None:
     ft = gd.frame_times(90, 2.0)
     ev = small_events()
     ev.loc[ev.index[:2], "condition"] = ["zeta", "alpha"]
-    design = gd.build_design(ev, ft, drift_model="none")
+    design = gd.build_design(ev, ft, drift_basis="none")
     assert [n for n, r in zip(design.names, design.roles) if r == "interest"] == ["alpha", "go", "stop", "zeta"]
     with pytest.warns(GlmstepsWarning, match="not modelled"):
-        gd.build_design(ev, ft, drift_model="none", conditions=["go", "stop"])
+        gd.build_design(ev, ft, drift_basis="none", conditions=["go", "stop"])
 
 
 def test_modulator_is_mean_centred_within_condition() -> None:
     ft = gd.frame_times(90, 2.0)
     ev = small_events()
-    design = gd.build_design(ev, ft, modulators={"go": ["rt"]}, drift_model="none")
+    design = gd.build_design(ev, ft, modulators={"go": ["rt"]}, drift_basis="none")
     kernel, _ = hrf_basis("double_gamma", 0.1)
     go = ev[ev.condition == "go"]
     # reference: Buchel et al. (1996) mean-centred parametric regressor = sum_e (m_e - mean m) r_e,
@@ -260,7 +260,7 @@ def test_build_design_user_errors() -> None:
 
 def test_fir_design_columns() -> None:
     ft = gd.frame_times(90, 2.0)
-    design = gd.build_design(small_events(), ft, hrf="fir", fir_bins=3, fir_bin_width_s=4.0, drift_model="none")
+    design = gd.build_design(small_events(), ft, hrf="fir", fir_bins=3, fir_bin_width_s=4.0, drift_basis="none")
     assert design.names[:6] == ("go__fir00", "go__fir01", "go__fir02", "stop__fir00", "stop__fir01", "stop__fir02")
     assert design.basis[:3] == ("fir00", "fir01", "fir02")
     # an impulse at 20 s: the 0-4 s bin is 1 at frames 21 s and 23 s (common practice FIR definition)
@@ -276,7 +276,7 @@ def diagnostic_design() -> gd.Design:
     rng = np.random.default_rng(11)
     confounds = pd.DataFrame({"motion_x": rng.normal(size=90), "motion_y": rng.normal(size=90)})
     return gd.build_design(small_events(), ft, hrf="double_gamma_derivative", confounds=confounds,
-                           modulators={"go": ["rt"]}, drift_model="cosine", cutoff_s=128.0)
+                           modulators={"go": ["rt"]}, drift_basis="cosine", cutoff_s=128.0)
 
 
 def test_vif_matches_statsmodels_ols() -> None:
@@ -319,11 +319,11 @@ def test_absent_condition_is_reported_not_an_error() -> None:
 
 def test_rank_deficient_design_names_the_collinear_columns() -> None:
     ft = gd.frame_times(90, 2.0)
-    base = gd.build_design(small_events(), ft, drift_model="none")
+    base = gd.build_design(small_events(), ft, drift_basis="none")
     go = base.X[:, base.names.index("go")]
     rng = np.random.default_rng(5)
     confounds = pd.DataFrame({"motion_x": rng.normal(size=90), "shifted_go": 2.0 * go + 3.0})
-    design = gd.build_design(small_events(), ft, drift_model="none", confounds=confounds)
+    design = gd.build_design(small_events(), ft, drift_basis="none", confounds=confounds)
     # reference: the null space of X (scipy.linalg.null_space) involves go, shifted_go and intercept only
     null = scipy.linalg.null_space(design.X / np.linalg.norm(design.X, axis=0))
     assert null.shape[1] == 1

@@ -28,10 +28,10 @@ def make_fit(v: int = 50, p: int = 4, n: int = 30, b: int = 3, excluded: bool = 
         mean_image=rng.random(shape).astype(np.float32), excluded=excluded,
         attrs={"status_counts": {"outside_mask": 160, "non_finite": 0, "zero_variance": 0, "nonpositive_mean": 0,
                                  "fitted": v},
-               "noise_model": "ar1", "scaling": "percent", "repetition_time_s": 2.0, "ar_order": 1})
+               "autocorrelation": "ar1", "scaling": "percent", "repetition_time_s": 2.0, "ar_order": 1})
 
 
-RECORD = {"step": "fit", "glmsteps_version": "0.1.0", "params": {"noise_model": "ar1"}, "params_hash": "ab" * 32,
+RECORD = {"step": "fit", "glmsteps_version": "0.1.0", "params": {"autocorrelation": "ar1"}, "params_hash": "ab" * 32,
           "inputs": {}, "lineage_hash": "cd" * 32, "warnings": []}
 
 
@@ -52,7 +52,7 @@ def test_round_trip(tmp_path: Path) -> None:
     assert back.attrs["status_counts"] == fit.attrs["status_counts"]
     for key in ("step", "params_hash", "lineage_hash", "glmsteps_version"):
         assert back.attrs[key] == RECORD[key]
-    assert (back.attrs["noise_model"], back.attrs["scaling"], back.attrs["repetition_time_s"]) == ("ar1", "percent", 2.0)
+    assert (back.attrs["autocorrelation"], back.attrs["scaling"], back.attrs["repetition_time_s"]) == ("ar1", "percent", 2.0)
     assert list(tmp_path.iterdir()) == [path]  # no temporary left behind
 
 

@@ -57,7 +57,7 @@ def _write_fit(path: Path, seed: int = 0, n: int = 48, zero_b: bool = False, exc
     with h5py.File(path, "w") as h5:
         h5.attrs.update({"provenance": json.dumps({"step": "fit", "lineage_hash": "0" * 64}), "step": "fit",
                          "params_hash": "0" * 64, "lineage_hash": "0" * 64, "glmsteps_version": "0.1.0",
-                         "excluded": excluded, "noise_model": "ols", "scaling": "none", "repetition_time_s": 2.0})
+                         "excluded": excluded, "autocorrelation": "ols", "scaling": "none", "repetition_time_s": 2.0})
         h5["grid/shape"] = np.array(SHAPE, dtype=np.int64)
         h5["grid/affine"] = AFFINE
         h5["voxels/index"] = voxel_index.astype(np.int64)

@@ -23,8 +23,8 @@ TR_S = 2.0
 def default_params(**changes: Any) -> dict[str, Any]:
     params: dict[str, Any] = {
         "hrf": "double_gamma", "fir_bins": 0, "fir_bin_width_s": 0.0, "time_resolution_s": 0.1,
-        "drift_model": "cosine", "cutoff_s": 128.0, "legendre_order": 3, "repetition_time_s": TR_S,
-        "slice_time_ref": 0.5, "conditions": ["faces", "houses"], "modulators": {"faces": ["rating"]},
+        "drift_basis": "cosine", "cutoff_s": 128.0, "legendre_order": 3, "repetition_time_s": TR_S,
+        "volume_time_fraction": 0.5, "conditions": ["faces", "houses"], "modulators": {"faces": ["rating"]},
     }
     params.update(changes)
     return params
@@ -136,7 +136,7 @@ def test_excluded_run_passes_through_rank_deficiency(tmp_path: Path) -> None:
     ({"time_resolution_s": 0.2}, ConfigError, "0.1"),
     ({"hrf": "boxcar"}, ConfigError, "hrf"),
     ({"hrf": "fir", "fir_bins": 0}, ConfigError, "fir_bins"),
-    ({"slice_time_ref": 2.0}, ConfigError, "slice_time_ref"),
+    ({"volume_time_fraction": 2.0}, ConfigError, "volume_time_fraction"),
     ({"modulators": {"faces": ["speed"]}}, DesignError, "speed"),
 ])
 def test_bad_settings_write_nothing(tmp_path: Path, changes: dict[str, Any], error: type, pattern: str) -> None:
@@ -158,7 +158,7 @@ def test_fir_and_legendre_job(tmp_path: Path) -> None:
     inputs = write_inputs(tmp_path / "in")
     outputs = outputs_in(tmp_path / "out")
     job.run(inputs, outputs, default_params(hrf="fir", fir_bins=4, fir_bin_width_s=4.0, modulators={},
-                                            drift_model="legendre", legendre_order=2), {})
+                                            drift_basis="legendre", legendre_order=2), {})
     summary = json.loads(Path(outputs["summary"]).read_text())
     assert summary["names"][:4] == ["faces__fir00", "faces__fir01", "faces__fir02", "faces__fir03"]
     assert summary["names"][-3:] == ["drift_01", "drift_02", "intercept"]

@@ -72,7 +72,7 @@ def outputs_in(folder: Path) -> dict[str, str]:
             "residual_sd": str(folder / "residual_sd.nii.gz"), "ar_coef": str(folder / "ar_coef.nii.gz")}
 
 
-PARAMS = {"scaling": "percent", "grand_mean_value": 100.0, "noise_model": "ar1", "ar_order": 1,
+PARAMS = {"scaling": "percent", "grand_mean_value": 100.0, "autocorrelation": "ar1", "ar_order": 1,
           "ar_smoothing_fwhm_mm": 6.0, "ar_bin_width": 0.01, "repetition_time_s": TR_S}
 WILDCARDS = {"subject": "01", "run_id": "task-go_run-1"}
 
@@ -87,11 +87,11 @@ def test_job_end_to_end(tmp_path: Path) -> None:
     assert counts == {"outside_mask": 6 * 7 * 5 - in_mask, "non_finite": 1, "zero_variance": 1,
                       "nonpositive_mean": 0, "fitted": in_mask - 2}
     assert fit.beta.shape == (4, in_mask - 2) and fit.beta.dtype == np.float32
-    assert fit.attrs["noise_model"] == "ar1" and fit.attrs["scaling"] == "percent"
+    assert fit.attrs["autocorrelation"] == "ar1" and fit.attrs["scaling"] == "percent"
     assert np.all(fit.dof == (N_VOL - FIRST) - 4)
     side = json.loads((out / "fit.json").read_text())
     assert side["voxel_counts"] == counts and side["n_bins"] == fit.bin_rho.size and side["dof"] == N_VOL - FIRST - 4
-    assert side["noise_model"] == "ar1" and set(side["timing_s"]) >= {"read", "fit"}
+    assert side["autocorrelation"] == "ar1" and set(side["timing_s"]) >= {"read", "fit"}
     assert side["lineage_hash"] == fit.attrs["lineage_hash"]
     # the bold hash computed while streaming equals the one build_record would compute
     ref = provenance.build_record("fit", PARAMS, inputs, side["warnings"])
@@ -122,7 +122,7 @@ def test_job_end_to_end(tmp_path: Path) -> None:
 def test_ols_job_matches_statsmodels(tmp_path: Path) -> None:
     inputs = make_run(tmp_path)
     out = tmp_path / "out"
-    job.run(inputs, outputs_in(out), {**PARAMS, "noise_model": "ols", "scaling": "grand_mean",
+    job.run(inputs, outputs_in(out), {**PARAMS, "autocorrelation": "ols", "scaling": "grand_mean",
                                       "grand_mean_value": 1000.0}, WILDCARDS)
     fit = read_fit(out / "fit.h5")
     data = nib.load(inputs["bold"]).get_fdata()[..., FIRST:].reshape(-1, N_VOL - FIRST)
@@ -146,7 +146,7 @@ def test_results_do_not_depend_on_chunk_size(tmp_path: Path, model: str) -> None
     columns = np.arange(990)
     factors = est.compute_scale_factors(Y.mean(axis=0), "percent")
     mask = np.ones(grid, dtype=bool)
-    settings = job.check_params({**PARAMS, "noise_model": model, "ar_order": 2})
+    settings = job.check_params({**PARAMS, "autocorrelation": model, "ar_order": 2})
     order = 2 if model == "arp" else 1
     runs = [job.fit_voxels(Y, columns, factors, design, settings, order, size, mask, (3.0, 3.0, 3.0))
             for size in (7, 1000, 990)]
@@ -169,14 +169,14 @@ def test_chunk_size_from_environment(tmp_path: Path, monkeypatch: pytest.MonkeyP
 def test_arp_order_follows_the_design(tmp_path: Path) -> None:
     inputs = make_run(tmp_path)
     out = tmp_path / "out"
-    job.run(inputs, outputs_in(out), {**PARAMS, "noise_model": "arp", "ar_order": 4}, WILDCARDS)
+    job.run(inputs, outputs_in(out), {**PARAMS, "autocorrelation": "arp", "ar_order": 4}, WILDCARDS)
     side = json.loads((out / "fit.json").read_text())
     # 60 kept volumes, rank 4: 56 residual dof fit 4 coefficients (10 dof each)
     assert side["ar_order"] == 4 and read_fit(out / "fit.h5").ar_coef.shape[1] == 4 and side["warnings"] == []
     short = tmp_path / "short"
     short.mkdir()
     inputs = make_run(short, n_vol=36)  # 34 kept volumes, 30 residual dof: AR(3) at most
-    job.run(inputs, outputs_in(short / "out"), {**PARAMS, "noise_model": "arp", "ar_order": 4}, WILDCARDS)
+    job.run(inputs, outputs_in(short / "out"), {**PARAMS, "autocorrelation": "arp", "ar_order": 4}, WILDCARDS)
     side = json.loads((short / "out" / "fit.json").read_text())
     assert side["ar_order"] == 3 and read_fit(short / "out" / "fit.h5").ar_coef.shape[1] == 3
     assert len(side["warnings"]) == 1 and "AR(4) does not fit" in side["warnings"][0]

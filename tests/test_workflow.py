@@ -143,3 +143,19 @@ def test_3d_bold_is_a_one_line_error(one_run):
     line = _one_error_line(proc)
     assert bold_path.name in line and ("4D" in line or "4-D" in line)
     assert not (one_run.workdir / target).exists()
+
+
+def test_group_maps_recover_the_blobs_with_fwe_control(toy_results):
+    """Group one-sample maps: FWE p < 0.05 at each blob centre, nothing FWE-significant far away (issue 6)."""
+    xyz = world_grid()
+    far = brain_mask().copy()
+    for blob in BLOBS:
+        far &= np.linalg.norm(xyz - np.asarray(blob.centre_mm), axis=-1) > blob.radius_mm + 10.0
+    for blob in BLOBS:
+        base = toy_results.results / "group" / "model-everyone" / f"contrast-{blob.condition}" / "mean"
+        p_fwe = np.asarray(nib.load(base / "p_fwe.nii.gz").dataobj, dtype=float)
+        centre = np.unravel_index(np.argmin(np.linalg.norm(xyz - np.asarray(blob.centre_mm), axis=-1)), xyz.shape[:3])
+        assert p_fwe[centre] < 0.05, (blob.condition, p_fwe[centre])
+        assert np.nanmin(p_fwe[far]) >= 0.05, blob.condition
+        # the permutation p is never below 1 / n_permutations (Nichols & Holmes 2002)
+        assert np.nanmin(p_fwe) >= 1.0 / toy_results.config["group_models"]["everyone"]["permutation"]["n_permutations"] - 1e-12

@@ -27,7 +27,7 @@ import numpy as np
 
 from .. import provenance
 from ..bids import parse_run_id
-from ..contrasts import MAP_KEYS, compute_contrast, contrast_matrix, parse_spec
+from ..contrasts import MAP_KEYS, evaluate_contrast, contrast_matrix, parse_spec
 from ..errors import ConfigError, ContrastError
 from ..maps import save_map
 
@@ -83,7 +83,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
             except ContrastError:
                 extra["weights"] = None
         else:
-            result = compute_contrast(spec, np.asarray(fit.design), list(fit.names), list(fit.conditions),
+            result = evaluate_contrast(spec, np.asarray(fit.design), list(fit.names), list(fit.conditions),
                                       list(fit.basis), fit.beta, fit.residual_variance, fit.bin,
                                       fit.bin_covariance, fit.dof)
             if not result.estimable and not skip:

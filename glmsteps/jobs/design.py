@@ -7,8 +7,8 @@ Inputs
     ``drop_initial_volumes``, ``excluded``).
 Params
     ``hrf``, ``fir_bins``, ``fir_bin_width_s``, ``time_resolution_s``,
-    ``drift_model``, ``cutoff_s``, ``legendre_order``, ``repetition_time_s``,
-    ``slice_time_ref``, ``conditions`` (list, may be empty), ``modulators``
+    ``drift_basis``, ``cutoff_s``, ``legendre_order``, ``repetition_time_s``,
+    ``volume_time_fraction``, ``conditions`` (list, may be empty), ``modulators``
     (mapping condition -> list of columns).
 Outputs
     ``design`` (TSV, one column per regressor, one row per kept volume),
@@ -37,11 +37,11 @@ from ..design import DRIFT_MODELS, build_design, design_diagnostics, frame_times
 from ..errors import ConfigError, DesignError
 from ..fileio import read_json, read_tsv, write_json, write_tsv
 from ..hrf import HRF_MODELS
-from ..plots.design import plot_correlation_matrix, plot_design_matrix
+from ..plots.design import plot_correlation_matrix, draw_design_matrix
 
 STEP = "build_design"
-PARAM_KEYS: tuple[str, ...] = ("hrf", "fir_bins", "fir_bin_width_s", "time_resolution_s", "drift_model", "cutoff_s",
-                               "legendre_order", "repetition_time_s", "slice_time_ref", "conditions", "modulators")
+PARAM_KEYS: tuple[str, ...] = ("hrf", "fir_bins", "fir_bin_width_s", "time_resolution_s", "drift_basis", "cutoff_s",
+                               "legendre_order", "repetition_time_s", "volume_time_fraction", "conditions", "modulators")
 INPUT_KEYS: tuple[str, ...] = ("events", "confounds", "confounds_summary")
 OUTPUT_KEYS: tuple[str, ...] = ("design", "summary", "figure", "correlation_figure")
 
@@ -65,17 +65,17 @@ def check_params(params: Mapping[str, Any]) -> dict[str, Any]:
     hrf = params["hrf"]
     if hrf not in HRF_MODELS:
         raise ConfigError(f"{STEP}: hrf={hrf!r} is not known; use one of {', '.join(HRF_MODELS)}")
-    drift = params["drift_model"]
+    drift = params["drift_basis"]
     if drift not in DRIFT_MODELS:
-        raise ConfigError(f"{STEP}: drift_model={drift!r} is not known; use one of {', '.join(DRIFT_MODELS)}")
+        raise ConfigError(f"{STEP}: drift_basis={drift!r} is not known; use one of {', '.join(DRIFT_MODELS)}")
     dt = _number(params, "time_resolution_s", positive=True)
     if dt > 0.1:
         raise ConfigError(f"{STEP}: time_resolution_s={dt} s is coarser than 0.1 s; set it to 0.1 or finer")
-    out: dict[str, Any] = {"hrf": hrf, "drift_model": drift, "dt_s": dt,
+    out: dict[str, Any] = {"hrf": hrf, "drift_basis": drift, "dt_s": dt,
                            "repetition_time_s": _number(params, "repetition_time_s", positive=True),
-                           "slice_time_ref": _number(params, "slice_time_ref")}
-    if not 0.0 <= out["slice_time_ref"] <= 1.0:
-        raise ConfigError(f"{STEP}: slice_time_ref={params['slice_time_ref']!r} must be between 0 and 1")
+                           "volume_time_fraction": _number(params, "volume_time_fraction")}
+    if not 0.0 <= out["volume_time_fraction"] <= 1.0:
+        raise ConfigError(f"{STEP}: volume_time_fraction={params['volume_time_fraction']!r} must be between 0 and 1")
     out["cutoff_s"] = _number(params, "cutoff_s", positive=True) if drift == "cosine" else 128.0
     order = params["legendre_order"]
     if drift == "legendre" and (isinstance(order, bool) or not isinstance(order, (int, np.integer)) or order < 1):
@@ -178,13 +178,13 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     events = read_events(inputs["events"])
     confounds = read_confounds(inputs["confounds"], n_total).iloc[drop:].reset_index(drop=True)
     n_kept = n_total - drop
-    times = frame_times(n_kept, settings["repetition_time_s"], settings["slice_time_ref"], first_volume=drop)
+    times = frame_times(n_kept, settings["repetition_time_s"], settings["volume_time_fraction"], first_volume=drop)
 
     with provenance.collect_warnings() as seen:
         try:
             design = build_design(events, times, hrf=settings["hrf"], dt_s=settings["dt_s"],
                                   fir_bins=settings["fir_bins"], fir_bin_width_s=settings["fir_bin_width_s"],
-                                  drift_model=settings["drift_model"], cutoff_s=settings["cutoff_s"],
+                                  drift_basis=settings["drift_basis"], cutoff_s=settings["cutoff_s"],
                                   legendre_order=settings["legendre_order"], confounds=confounds,
                                   conditions=settings["conditions"], modulators=settings["modulators"])
             diagnostics = design_diagnostics(design, allow_rank_deficient=excluded)
@@ -211,5 +211,5 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     provenance.write_sidecar(outputs["correlation_figure"], record, excluded=excluded,
                              names=list(design.names), content="regressor correlation matrix of the design")
     plot_correlation_matrix(design.names, corr, outputs["correlation_figure"], title=f"correlations {title}")
-    plot_design_matrix(design.X, design.names, design.roles, outputs["figure"], title=title, first_volume=drop)
+    draw_design_matrix(design.X, design.names, design.roles, outputs["figure"], title=title, first_volume=drop)
     write_tsv(outputs["design"], design.to_frame())

@@ -7,7 +7,7 @@ Inputs (named)
     ``first_volume``, ``n_volumes``, ``excluded``).
 Params
     ``scaling`` (percent | grand_mean | none), ``grand_mean_value``,
-    ``noise_model`` (ols | ar1 | arp), ``ar_order`` (1..4),
+    ``autocorrelation`` (ols | ar1 | arp), ``ar_order`` (1..4),
     ``ar_smoothing_fwhm_mm`` (>= 0), ``ar_bin_width``, ``repetition_time_s``.
 Outputs (named)
     ``fit`` (fit.h5, sidecar fit.json), ``mean``, ``residual_sd``, ``ar_coef``
@@ -25,6 +25,7 @@ from __future__ import annotations
 import logging
 import os
 import time
+import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -35,8 +36,8 @@ import numpy.typing as npt
 from .. import estimation as est
 from .. import provenance
 from ..bids import parse_run_id
-from ..errors import ConfigError, DataError
-from ..fileio import read_json, read_tsv
+from ..errors import ConfigError, DataError, DesignError, GlmstepsWarning
+from ..fileio import read_json, read_numeric_tsv
 from ..fitstore import StoredFit, write_fit
 from ..maps import save_map
 from ..volumes import check_grid, check_repetition_time, read_bold_header, read_mask, stream_masked
@@ -55,7 +56,7 @@ class FitSettings:
 
     scaling: est.ScalingMethod
     grand_mean_value: float
-    noise_model: est.NoiseModel
+    autocorrelation: est.NoiseModel
     ar_order: int
     ar_smoothing_fwhm_mm: float
     ar_bin_width: float
@@ -73,9 +74,9 @@ def check_params(params: Mapping[str, Any]) -> FitSettings:
     scaling = p.get("scaling", "percent")
     if scaling not in ("percent", "grand_mean", "none"):
         raise ConfigError(f"config fit.scaling: expected percent, grand_mean or none, found {scaling!r}")
-    noise = p.get("noise_model", "ar1")
+    noise = p.get("autocorrelation", "ar1")
     if noise not in ("ols", "ar1", "arp"):
-        raise ConfigError(f"config fit.noise_model: expected ols, ar1 or arp, found {noise!r}")
+        raise ConfigError(f"config fit.autocorrelation: expected ols, ar1 or arp, found {noise!r}")
     try:
         gm = float(p.get("grand_mean_value", 100.0))
         order = int(p.get("ar_order", 1))
@@ -96,7 +97,7 @@ def check_params(params: Mapping[str, Any]) -> FitSettings:
         raise ConfigError(f"config fit.ar_bin_width: expected a number in (0, 0.1], found {width}")
     if not (tr > 0 and np.isfinite(tr)):
         raise ConfigError(f"config repetition_time_s: expected a positive number of seconds, found {tr}")
-    return FitSettings(scaling=scaling, grand_mean_value=gm, noise_model=noise,
+    return FitSettings(scaling=scaling, grand_mean_value=gm, autocorrelation=noise,
                        ar_order=order if noise == "arp" else 1, ar_smoothing_fwhm_mm=fwhm, ar_bin_width=width,
                        repetition_time_s=tr)
 
@@ -164,16 +165,12 @@ def read_design(design_path: str, summary_path: str) -> DesignInput:
     if len(roles) != len(names):
         raise DataError(f"{summary_path}: {len(names)} names but {len(roles)} roles; rerun build_design")
     try:
-        table = read_tsv(design_path)
+        columns, X = read_numeric_tsv(design_path)
     except (OSError, ValueError) as exc:
-        raise DataError(f"{design_path}: cannot read design TSV ({exc}); rerun build_design") from exc
-    if list(table.columns) != names:
-        raise DataError(f"{design_path}: columns {list(table.columns)[:6]}... do not match the summary names "
+        raise DataError(f"{design_path}: cannot read design TSV as numbers ({exc}); rerun build_design") from exc
+    if columns != names:
+        raise DataError(f"{design_path}: columns {columns[:6]}... do not match the summary names "
                         f"{names[:6]}... of {summary_path}; rerun build_design")
-    try:
-        X = table.to_numpy(dtype=np.float64)
-    except (TypeError, ValueError) as exc:
-        raise DataError(f"{design_path}: a column is not numeric ({exc}); rerun build_design") from exc
     bad = np.argwhere(~np.isfinite(X))
     if bad.size:
         r, c = bad[0]
@@ -216,7 +213,8 @@ def _log_progress(label: str, done: int, total: int, start: float) -> None:
     logger.info("%s: %d/%d voxels, %.1f s elapsed, about %.1f s left", label, done, total, elapsed, left)
 
 
-def fit_voxels(Y: npt.NDArray[np.floating], columns: npt.NDArray[np.integer], factors: npt.NDArray[np.floating],
+def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], columns: npt.NDArray[np.integer],
+               factors: npt.NDArray[np.floating],
                design: est.DesignFactors, settings: FitSettings, order: int, chunk: int,
                fitted_mask: npt.NDArray[np.bool_] | None = None,
                voxel_size_mm: npt.ArrayLike = (1.0, 1.0, 1.0)) -> VoxelFit:
@@ -224,8 +222,10 @@ def fit_voxels(Y: npt.NDArray[np.floating], columns: npt.NDArray[np.integer], fa
 
     Parameters
     ----------
-    Y : ndarray, shape (n_scans, n_voxels_in_mask), float32
-        Unscaled signal.
+    Y : ndarray, shape (n_scans, n_voxels_in_mask), float32, or a one-element list holding it
+        Unscaled signal. Given in a list, the array is taken out of the list and
+        released as soon as it is no longer needed (after the first pass for
+        OLS and AR(1)), so that smoothing and writing run without it in memory.
     columns : ndarray of int, shape (v,)
         Columns of ``Y`` to fit, in voxel order.
     factors : ndarray, shape (v,)
@@ -245,28 +245,50 @@ def fit_voxels(Y: npt.NDArray[np.floating], columns: npt.NDArray[np.integer], fa
     -------
     VoxelFit
     """
+    if isinstance(Y, list):
+        Y = Y.pop()
     v = columns.size
     n, p = design.X.shape
-    model = settings.noise_model
+    model = settings.autocorrelation
     max_lag = order if model == "arp" else 1
     starts = range(0, v, chunk)
 
     def block(s: int) -> tuple[slice, npt.NDArray[np.float64]]:
         sl = slice(s, min(s + chunk, v))
-        return sl, np.asarray(Y[:, columns[sl]], dtype=np.float64) * factors[sl]
+        cols = columns[sl]
+        # nearly always the fitted columns of a chunk are contiguous: slice instead of gathering
+        data = Y[:, cols[0]:cols[-1] + 1] if cols[-1] - cols[0] + 1 == cols.size else Y[:, cols]
+        return sl, np.multiply(data, factors[sl], dtype=np.float64)
 
-    lag = np.empty((max_lag + 1, v))
     beta = np.empty((p, v), dtype=np.float32)
     resvar = np.empty(v, dtype=np.float32)
+    if model == "ar1":
+        # AR(1): keep the OLS sufficient statistics, so the refit needs no second pass over the data
+        lag_design_products = np.empty((p, v), dtype=np.float32)
+        ends = np.empty((4, v))                          # e_first, e_last, e0, e1
+        y_censored = np.empty((design.spike_rows.size, v))
+    else:
+        lag = np.empty((max_lag + 1, v))
     t0 = time.perf_counter()
     for s in starts:
         sl, Yc = block(s)
         ols = est.fit_ols(design, Yc)
-        lag[:, sl] = est.compute_lag_products(ols.residuals, max_lag)
+        if model == "ar1":
+            summ = est.summarise_residuals(design, ols.residuals)
+            beta[:, sl] = ols.beta
+            lag_design_products[:, sl] = summ.lag_design_products
+            ends[:, sl] = (summ.e_first, summ.e_last, summ.e0, summ.e1)
+            y_censored[:, sl] = Yc[design.spike_rows]
+        else:
+            lag[:, sl] = est.compute_lag_products(ols.residuals, max_lag)
         if model == "ols":
             beta[:, sl] = ols.beta
             resvar[sl] = ols.residual_variance
         _log_progress("fit pass 1 (OLS)", sl.stop, v, t0)
+    if model == "ar1":
+        lag = np.stack([ends[2], 2.0 * ends[3]])
+    if model != "arp":
+        Y = None  # not needed any more: let the caller's data go
     if model == "arp":
         acf = est.correct_autocorrelation(lag, est.compute_bias_matrix(design.X, max_lag))
     else:
@@ -300,11 +322,13 @@ def fit_voxels(Y: npt.NDArray[np.floating], columns: npt.NDArray[np.integer], fa
         bins = est.prepare_bins(design, bin_rho, bin_acf)
     t0 = time.perf_counter()
     for s in starts:
-        sl, Yc = block(s)
         if model == "ar1":
-            ols = est.fit_ols(design, Yc)
-            w = est.fit_ar1_block(design, Yc, ols, bin_index[sl], bins)
+            sl = slice(s, min(s + chunk, v))
+            summ = est.Ar1Summary(lag_design_products=lag_design_products[:, sl], e_first=ends[0, sl],
+                                  e_last=ends[1, sl], e0=ends[2, sl], e1=ends[3, sl])
+            w = est.fit_ar1_summary(design, beta[:, sl], summ, y_censored[:, sl], bin_index[sl], bins)
         else:
+            sl, Yc = block(s)
             w = est.fit_arp_block(design, Yc, bin_index[sl], bins)
         beta[:, sl] = w.beta
         resvar[sl] = w.residual_variance
@@ -397,26 +421,21 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
                                 f"{in_paths['design_summary']} says {design_in.n_volumes}; "
                                 "check that the events, confounds and BOLD belong to the same run")
             check_repetition_time(bold, settings.repetition_time_s)
-            design = est.prepare_design(design_in.X, design_in.roles)
+            try:
+                design = est.prepare_design(design_in.X, design_in.roles)
+            except DesignError as exc:
+                raise DesignError(f"{in_paths['design']}: {exc}") from exc
             order = 1
-            if settings.noise_model == "arp":
+            if settings.autocorrelation == "arp":
                 order = est.check_ar_order(design, settings.ar_order)
                 if order < settings.ar_order:
-                    import warnings
-
-                    from ..errors import GlmstepsWarning
                     warnings.warn(f"{in_paths['design']}: AR({settings.ar_order}) does not fit a design with "
                                   f"{design.dof} residual degrees of freedom; using AR({order})",
                                   GlmstepsWarning, stacklevel=2)
             # --- read -----------------------------------------------------------------------------
             t_read = time.perf_counter()
-            series = stream_masked(bold, mask, design_in.first_volume, threads=threads)
-            read_s = time.perf_counter() - t_read
-            logger.info("read %s: %d volumes x %d in-mask voxels in %.2f s", bold_path, series.Y.shape[0],
-                        series.Y.shape[1], read_s)
-            fit, extra = _fit_run(series, mask, bold, design_in, design, settings, order, bold_path)
-            extra["timing_s"] = {"read": round(read_s, 3)}
-            extra["sha256_bold"] = series.sha256
+            fit, extra = _fit_run(stream_masked(bold, mask, design_in.first_volume, threads=threads), mask, bold,
+                                  design_in, design, settings, order, bold_path, time.perf_counter() - t_read)
     t_fit_end = time.perf_counter()
     lag1 = extra.pop("_qc_lag1", None)
     sha = extra.pop("sha256_bold", None)
@@ -425,7 +444,7 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
         timing["fit"] = extra.pop("timing_s_fit")
     timing["total_before_write"] = round(t_fit_end - t_start, 3)
     record = build_record_precomputed(params, in_paths, {"bold": sha} if sha else {}, list(seen), **extra)
-    fit.attrs.update({"noise_model": settings.noise_model, "scaling": settings.scaling,
+    fit.attrs.update({"autocorrelation": settings.autocorrelation, "scaling": settings.scaling,
                       "repetition_time_s": settings.repetition_time_s})
     # --- write: sidecar first, then the fit, then the QC maps ----------------------------------------
     provenance.write_sidecar(outputs["fit"], record, timing_s=timing)
@@ -440,12 +459,18 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
 
 def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: DesignInput,
              design: est.DesignFactors, settings: FitSettings, order: int,
-             bold_path: str) -> tuple[StoredFit, dict[str, Any]]:
+             bold_path: str, read_s: float) -> tuple[StoredFit, dict[str, Any]]:
+    logger.info("read %s: %d volumes x %d in-mask voxels in %.2f s", bold_path, series.Y.shape[0],
+                series.Y.shape[1], read_s)
     flat_c = np.flatnonzero(mask)
-    finite = np.isfinite(series.minimum) & np.isfinite(series.maximum) & np.isfinite(series.mean)
+    mean = series.mean
+    finite = np.isfinite(series.minimum) & np.isfinite(series.maximum) & np.isfinite(mean)
     non_finite = ~finite
     zero_var = finite & (series.minimum == series.maximum)
-    nonpos = finite & ~zero_var & (series.mean <= 0) if settings.scaling == "percent" else np.zeros_like(finite)
+    nonpos = finite & ~zero_var & (mean <= 0) if settings.scaling == "percent" else np.zeros_like(finite)
+    data = [series.Y]
+    sha256 = series.sha256
+    del series  # from here on only ``data`` holds the signal, so fit_voxels can release it
     fitted = finite & ~zero_var & ~nonpos
     counts = {"outside_mask": int(mask.size - flat_c.size), "non_finite": int(non_finite.sum()),
               "zero_variance": int(zero_var.sum()), "nonpositive_mean": int(nonpos.sum()),
@@ -456,28 +481,31 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: Des
                         "check the BOLD and the mask")
     columns = np.flatnonzero(fitted)
     voxel_index = flat_c[columns]
-    factors = est.compute_scale_factors(series.mean[columns], settings.scaling, settings.grand_mean_value)
+    if settings.scaling == "grand_mean" and not mean[columns].mean() > 0:
+        raise DataError(f"{bold_path}: the mean signal over the mask is {mean[columns].mean():g}, "
+                        "grand-mean scaling needs a positive mean; use scaling: none")
+    factors = est.compute_scale_factors(mean[columns], settings.scaling, settings.grand_mean_value)
     fitted_mask = np.zeros(mask.shape, dtype=bool)
     fitted_mask.flat[voxel_index] = True
     t0 = time.perf_counter()
-    vf = fit_voxels(series.Y, columns, factors, design, settings, order, chunk_voxels(), fitted_mask,
+    vf = fit_voxels(data, columns, factors, design, settings, order, chunk_voxels(), fitted_mask,
                     bold.voxel_size_mm)
     fit_s = time.perf_counter() - t0
     mean_image = np.full(mask.shape, np.nan, dtype=np.float32)
-    mean_image.flat[flat_c] = series.mean.astype(np.float32)
+    mean_image.flat[flat_c] = mean.astype(np.float32)
     fit = StoredFit(shape=tuple(int(s) for s in mask.shape), affine=bold.affine, voxel_index=voxel_index,
                     design=design.X, names=design_in.names, roles=design_in.roles, conditions=design_in.conditions,
                     basis=design_in.basis, beta=vf.beta, residual_variance=vf.residual_variance,
                     dof=np.full(columns.size, design.dof, dtype=np.float32), ar_coef=vf.ar_coef, bin=vf.bin,
                     bin_covariance=vf.bin_covariance, bin_rho=vf.bin_rho, mean_image=mean_image, excluded=False,
                     attrs={"status_counts": counts, "ar_order": int(vf.order), "rank": int(design.rank)})
-    extra = {"excluded": False, "voxel_counts": counts, "noise_model": settings.noise_model,
+    extra = {"excluded": False, "voxel_counts": counts, "autocorrelation": settings.autocorrelation,
              "ar_order": int(vf.order), "dof": int(design.dof), "rank": int(design.rank),
              "n_bins": int(vf.bin_rho.size), "n_volumes_fitted": int(design.X.shape[0]),
              "n_censored": int(design.censored.sum()),
              "scaling": settings.scaling, "grand_mean_value": settings.grand_mean_value,
              "timing_s_fit": round(fit_s, 3),
-             "_qc_lag1": vf.lag1}
+             "_qc_lag1": vf.lag1, "timing_s": {"read": round(read_s, 3)}, "sha256_bold": sha256}
     return fit, extra
 
 
@@ -492,7 +520,7 @@ def _excluded_fit(design_in: DesignInput, bold: Any, settings: FitSettings) -> t
                     bin_covariance=np.zeros((0, p, p)), bin_rho=np.zeros(0),
                     mean_image=np.full(shape3, np.nan, dtype=np.float32), excluded=True,
                     attrs={"status_counts": {}})
-    extra = {"excluded": True, "noise_model": settings.noise_model, "voxel_counts": {}, "n_bins": 0, "dof": None}
+    extra = {"excluded": True, "autocorrelation": settings.autocorrelation, "voxel_counts": {}, "n_bins": 0, "dof": None}
     return fit, extra
 
 
@@ -501,7 +529,7 @@ def _qc_values(fit: StoredFit, lag1: np.ndarray | None) -> dict[str, tuple[np.nd
         none = (np.zeros(0, dtype=np.float32), np.zeros(0, dtype=np.int64))
         return {"mean": none, "residual_sd": none, "ar_coef": none}
     finite_mean = np.flatnonzero(np.isfinite(fit.mean_image.ravel()))
-    ar = fit.ar_coef[:, 0] if fit.attrs.get("noise_model") != "ols" or lag1 is None else lag1
+    ar = fit.ar_coef[:, 0] if fit.attrs.get("autocorrelation") != "ols" or lag1 is None else lag1
     return {"mean": (fit.mean_image.ravel()[finite_mean], finite_mean),
             "residual_sd": (np.sqrt(fit.residual_variance), fit.voxel_index),
             "ar_coef": (ar, fit.voxel_index)}

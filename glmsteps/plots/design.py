@@ -28,7 +28,7 @@ def scale_for_display(X: npt.ArrayLike) -> npt.NDArray[np.float64]:
     return X / np.where(peak > 0, peak, 1.0)
 
 
-def plot_design_matrix(X: npt.ArrayLike, names: Sequence[str], roles: Sequence[str],
+def draw_design_matrix(X: npt.ArrayLike, names: Sequence[str], roles: Sequence[str],
                        path: str | os.PathLike[str], *, title: str = "design matrix",
                        first_volume: int = 0) -> None:
     """Save the design matrix as a PNG, one labelled column per regressor.

@@ -11,12 +11,13 @@ import os
 from typing import Any
 
 import matplotlib
+from matplotlib.colors import LinearSegmentedColormap
+from matplotlib.figure import Figure
 
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
+from ..fileio import atomic_path
 
-from ..fileio import atomic_path  # noqa: E402
+# Figures are built with the object API (matplotlib.figure.Figure), never pyplot: no GUI
+# backend, no global figure registry, and about half the import time in every job.
 
 #: Text and axis colour.
 INK = "#2b3440"
@@ -40,8 +41,9 @@ _RC: dict[str, Any] = {
 
 def new_figure(width_in: float, height_in: float, **subplots_kw: Any) -> tuple[Any, Any]:
     """A figure and axes in the house style (size in inches)."""
-    with plt.rc_context(_RC):
-        fig, axes = plt.subplots(figsize=(width_in, height_in), **subplots_kw)
+    with matplotlib.rc_context(_RC):
+        fig = Figure(figsize=(width_in, height_in))
+        axes = fig.subplots(**subplots_kw)
     for ax in getattr(axes, "flat", [axes]):
         for key in ("axes.facecolor",):
             ax.set_facecolor(_RC[key])
@@ -50,6 +52,5 @@ def new_figure(width_in: float, height_in: float, **subplots_kw: Any) -> tuple[A
 
 def save_figure(fig: Any, path: str | os.PathLike[str], dpi: int = 110) -> None:
     """Save a figure as PNG atomically and close it."""
-    with plt.rc_context(_RC), atomic_path(path) as tmp:
+    with matplotlib.rc_context(_RC), atomic_path(path) as tmp:
         fig.savefig(tmp, dpi=dpi, format="png", bbox_inches="tight")
-    plt.close(fig)
