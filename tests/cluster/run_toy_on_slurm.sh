@@ -1,14 +1,18 @@
 #!/usr/bin/env bash
 # run_toy_on_slurm.sh - the toy study through SLURM, end to end, in CI:
 #   1. start a one-node SLURM on loopback (local_slurm.sh; installs it if needed)
-#   2. write the toy study (`python -m glmsteps.cli toy-study`)
-#   3. run the workflow locally:        snakemake --cores N            (WORK/local)
+#   2. write the toy study (`python -m glmsteps.cli toy-study`) and its config
+#      (config/config.yaml with inputs.root set)
+#   3. run the workflow locally:        snakemake --cores 2              (LOCAL)
 #   4. run the same through SLURM:      snakemake --profile config/slurm (WORK/slurm)
 #      with the same config file
+#   Steps 2-3 reuse the toy study and local run that pytest keeps when
+#   GLMSTEPS_KEEP_TOY_RUN=DIR is set (DIR/data, DIR/local with its config.yaml):
+#   step 3 then only lets Snakemake confirm that nothing is left to do there.
 #   5. compare: every *.nii.gz byte-identical (sha256) and index.tsv identical
 #      in its params_hash and lineage_hash columns; the SLURM job completion
 #      file (sacct -c) and squeue list the submitted jobs as COMPLETED
-#   6. failure case: a copy of the study (3 subjects, no group models) with
+#   6. failure case: a copy of the study (2 subjects, no group models) with
 #      ONE subject's BOLD corrupted, through SLURM with --keep-going:
 #      snakemake fails, the fit job's log holds the one-line user-facing
 #      DataError naming the file, the other subjects' combined maps exist
@@ -24,6 +28,10 @@
 #   GS_SLURM_ACCOUNTING  none (default) | slurmdbd, passed to local_slurm.sh
 #   GS_TOY_DIR           working folder (default: a new temporary folder,
 #                        deleted after a successful run, kept after a failure)
+#   GS_TOY_LOCAL_RUN     folder of a toy study (data/) and its local run (local/,
+#                        with local/config.yaml) to reuse for steps 2-3
+#                        (default: $GLMSTEPS_KEEP_TOY_RUN, the folder pytest keeps);
+#                        ignored unless both exist; never deleted
 #   GS_TOY_STAGES        which parts to run: "compare failure" (default);
 #                        "compare" = steps 3-5, "failure" = step 6
 #   GS_TOY_CORRUPTION    how the BOLD of the failure case is corrupted:
@@ -37,6 +45,7 @@ here=$(cd "$(dirname "${BASH_SOURCE[0]}")" && pwd)
 repo=$(cd "$here/../.." && pwd)
 export GS_SLURM_ACCOUNTING=${GS_SLURM_ACCOUNTING:-none}
 stages=${GS_TOY_STAGES:-compare failure}
+kept=${GS_TOY_LOCAL_RUN:-${GLMSTEPS_KEEP_TOY_RUN:-}}
 corruption=${GS_TOY_CORRUPTION:-truncate}
 
 if [[ -n ${GS_PYTHON:-} ]]; then
@@ -141,8 +150,8 @@ run_snakemake() {
   return "$rc"
 }
 
-# write_config <dest> <data root> [failure]: config/config.yaml with inputs.root
-# set; "failure" also keeps three subjects and drops the group models
+# write_config <dest> <data root> [subject...]: config/config.yaml with
+# inputs.root set; with subjects, only those are analysed, without group models
 write_config() {
   "$python" - "$repo/config/config.yaml" "$@" <<'PY'
 import sys
@@ -153,8 +162,8 @@ source, dest, root = sys.argv[1:4]
 with open(source, encoding="utf-8") as f:
     config = yaml.safe_load(f)
 config["inputs"]["root"] = root
-if sys.argv[4:] == ["failure"]:
-    config["inputs"]["subjects"] = ["01", "02", "03"]
+if sys.argv[4:]:
+    config["inputs"]["subjects"] = sys.argv[4:]
     config["group_models"] = {}
 with open(dest, "w", encoding="utf-8") as f:
     yaml.safe_dump(config, f, sort_keys=False)
@@ -198,24 +207,39 @@ lap "start cluster"
 timings[-1]+=" (of which package install ${install_s:-?} s)"
 
 # ---------------------------------------------------------------- 2. toy study
-(cd "$repo" && exec "$python" -m glmsteps.cli toy-study "$work/toy") >"$work/toy_study.log" 2>&1 \
-  || { say "FAILED: toy-study; see $work/toy_study.log"; tail -n 20 "$work/toy_study.log" >&2; exit 1; }
-write_config "$work/config.yaml" "$work/toy"
-lap "write toy study"
+if [[ -n $kept && -d $kept/data && -f $kept/local/config.yaml ]]; then
+  kept=$(cd "$kept" && pwd)
+  toy=$kept/data
+  config=$kept/local/config.yaml
+  local_dir=$kept/local
+  say "reusing the toy study $toy and the local run in $local_dir (kept by pytest)"
+  lap "toy study (kept by pytest)"
+else
+  toy=$work/toy
+  config=$work/config.yaml
+  local_dir=$work/local
+  (cd "$repo" && exec "$python" -m glmsteps.cli toy-study "$toy") >"$work/toy_study.log" 2>&1 \
+    || { say "FAILED: toy-study; see $work/toy_study.log"; tail -n 20 "$work/toy_study.log" >&2; exit 1; }
+  write_config "$config" "$toy"
+  lap "write toy study"
+fi
 
 if wants compare; then
   # -------------------------------------------------------------- 3. local run
-  mkdir -p "$work/local" "$work/slurm"
-  if ! run_snakemake "$work/local.log" --directory "$work/local" --configfile "$work/config.yaml" \
-      --cores "$cpus"; then
+  # (in a kept run, Snakemake finds nothing to do unless the code changed since)
+  # the SLURM run always starts from nothing (a GS_TOY_DIR may hold an old one)
+  rm -rf "$work/slurm"
+  mkdir -p "$local_dir" "$work/slurm"
+  if ! run_snakemake "$work/local.log" --directory "$local_dir" --configfile "$config" --cores 2; then
     say "FAILED: the local run; last lines of $work/local.log:"
     tail -n 40 "$work/local.log" >&2
     exit 1
   fi
-  lap "local run (--cores $cpus)"
+  n_local=$(grep -c '^Finished jobid' "$work/local.log" || true)
+  lap "local run (--cores 2, $n_local jobs run)"
 
   # -------------------------------------------------------------- 4. SLURM run
-  if ! run_snakemake "$work/slurm.log" --directory "$work/slurm" --configfile "$work/config.yaml" \
+  if ! run_snakemake "$work/slurm.log" --directory "$work/slurm" --configfile "$config" \
       "${slurm_flags[@]}"; then
     say "FAILED: the SLURM run; last lines of $work/slurm.log:"
     tail -n 40 "$work/slurm.log" >&2
@@ -226,7 +250,7 @@ if wants compare; then
 
   # -------------------------------------------------------------- 5. compare
   slurm_states "$work/slurm.log" "$work/slurm_states.txt"
-  "$python" - "$work/local/results" "$work/slurm/results" "$work/slurm_states.txt" <<'PY'
+  "$python" - "$local_dir/results" "$work/slurm/results" "$work/slurm_states.txt" <<'PY'
 """Local and SLURM results identical; every SLURM job COMPLETED. Exit 1 on any problem."""
 import csv
 import hashlib
@@ -301,9 +325,12 @@ fi
 
 if wants failure; then
   # -------------------------------------------------------------- 6. failure case
-  bad_subject=02
+  # two subjects, the second one's first run corrupt
+  failure_subjects=(01 02)
+  bad_subject=${failure_subjects[-1]}
   broken=$work/toy_broken
-  cp -a "$work/toy" "$broken"
+  rm -rf "$broken"
+  cp -a "$toy" "$broken"
   bad_rel=sub-$bad_subject/func/sub-${bad_subject}_task-beacon_run-1_space-toy_desc-preproc_bold.nii.gz
   bad=$broken/$bad_rel
   "$python" - "$bad" "$corruption" <<'PY'
@@ -322,18 +349,19 @@ if how == "truncate":
 else:  # short-data: valid gzip, header intact, image data cut after 1000 bytes
     with gzip.open(path, "rb") as f:
         head = f.read(352 + 1000)
-    with gzip.open(path, "wb", mtime=0) as f:
+    with gzip.GzipFile(path, "wb", mtime=0) as f:
         f.write(head)
 PY
-  write_config "$work/config_broken.yaml" "$broken" failure
+  write_config "$work/config_broken.yaml" "$broken" "${failure_subjects[@]}"
+  rm -rf "$work/slurm_broken"
   mkdir -p "$work/slurm_broken"
   failure_rc=0
   run_snakemake "$work/slurm_broken.log" --directory "$work/slurm_broken" \
     --configfile "$work/config_broken.yaml" "${slurm_flags[@]}" --keep-going || failure_rc=$?
-  lap "SLURM run, 1 of 3 subjects corrupt"
+  lap "SLURM run, 1 of ${#failure_subjects[@]} subjects corrupt"
   slurm_states "$work/slurm_broken.log" "$work/slurm_broken_states.txt"
   "$python" - "$work/slurm_broken" "$bad" "$bad_subject" "$failure_rc" \
-      "$work/slurm_broken_states.txt" "$work/slurm_broken.log" <<'PY'
+      "$work/slurm_broken_states.txt" "$work/slurm_broken.log" "${failure_subjects[@]}" <<'PY'
 """The corrupt subject failed with a one-line DataError in its fit log; the others finished."""
 import re
 import sys
@@ -341,6 +369,7 @@ from pathlib import Path
 
 work, bad = Path(sys.argv[1]), sys.argv[2]
 bad_subject, rc, states_file, smk_log = sys.argv[3], int(sys.argv[4]), Path(sys.argv[5]), Path(sys.argv[6])
+subjects = sys.argv[7:]
 results = work / "results"
 problems = []
 
@@ -368,8 +397,7 @@ else:
     if "Traceback" in text:
         problems.append(f"{fit_log} holds a Python traceback; expected only the one-line user-facing error")
 
-subjects = sorted(p.name[4:] for p in results.glob("sub-*") if p.is_dir())
-others = [s for s in ("01", "03") if s != bad_subject]
+others = [s for s in subjects if s != bad_subject]
 for s in others:
     combined = sorted((results / f"sub-{s}" / "combined").glob("contrast-*/z.nii.gz"))
     # the toy config has four t contrasts, each combined over the two runs
