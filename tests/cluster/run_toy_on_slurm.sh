@@ -208,10 +208,10 @@ timings[-1]+=" (of which package install ${install_s:-?} s)"
 
 # ---------------------------------------------------------------- 2. toy study
 if [[ -n $kept && -d $kept/data && -f $kept/local/config.yaml ]]; then
-  kept=$(cd "$kept" && pwd)
-  toy=$kept/data
-  config=$kept/local/config.yaml
-  local_dir=$kept/local
+  # physical paths: the failure case copies the data, never through a link
+  toy=$(cd "$kept/data" && pwd -P)
+  local_dir=$(cd "$kept/local" && pwd -P)
+  config=$local_dir/config.yaml
   say "reusing the toy study $toy and the local run in $local_dir (kept by pytest)"
   lap "toy study (kept by pytest)"
 else
@@ -330,7 +330,8 @@ if wants failure; then
   bad_subject=${failure_subjects[-1]}
   broken=$work/toy_broken
   rm -rf "$broken"
-  cp -a "$toy" "$broken"
+  mkdir -p "$broken"
+  cp -a "$toy/." "$broken/"
   bad_rel=sub-$bad_subject/func/sub-${bad_subject}_task-beacon_run-1_space-toy_desc-preproc_bold.nii.gz
   bad=$broken/$bad_rel
   "$python" - "$bad" "$corruption" <<'PY'
