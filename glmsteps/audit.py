@@ -81,7 +81,7 @@ SETTING_LABELS: dict[str, tuple[str, str]] = {
     "cutoff_s": ("drift cutoff period", "s"),
     "legendre_order": ("highest Legendre order", ""),
     # fit
-    "scaling": ("signal scaling", ""),
+    "scaling": ("intensity scaling", ""),
     "grand_mean_value": ("grand-mean target", ""),
     "autocorrelation": ("autocorrelation model", ""),
     "ar_order": ("AR order", ""),
@@ -469,7 +469,7 @@ def describe_params(params: Mapping[str, Any]) -> list[str]:
     Examples
     --------
     >>> describe_params({"ar_smoothing_fwhm_mm": 0, "autocorrelation": "ar1"})
-    ['noise model: ar1', 'smoothing of AR coefficients: 0 mm FWHM']
+    ['autocorrelation model: ar1', 'smoothing of AR coefficients: 0 mm FWHM']
     """
     out = []
     for key, value in sorted(flatten_params(params).items(), key=lambda kv: _setting_order(kv[0])):

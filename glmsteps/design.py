@@ -341,7 +341,7 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
     frame_times_s : array_like, shape (n_scans,)
         Frame times of the rows to model (seconds, absolute; see :func:`frame_times`).
     hrf : {"double_gamma", "double_gamma_derivative", "double_gamma_dispersion", "glover", "fir"}
-        HRF model (:func:`glmsteps.hrf.hrf_basis`).
+        response model (:func:`glmsteps.hrf.hrf_basis`).
     dt_s : float
         Oversampling step (seconds, <= 0.1).
     fir_bins : int
@@ -381,16 +381,16 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
     mods: Mapping[str, Sequence[str]] = modulators or {}
     ft = _check_frames(frame_times_s)
     if hrf not in HRF_MODELS:
-        raise DesignError(f"unknown HRF model {hrf!r}; set design.hrf to one of {', '.join(HRF_MODELS)}")
+        raise DesignError(f"unknown response model {hrf!r}; set design.hrf to one of {', '.join(HRF_MODELS)}")
     if drift_basis not in DRIFT_MODELS:
-        raise DesignError(f"unknown drift model {drift_basis!r}; set design.drift_basis to one of "
+        raise DesignError(f"unknown drift basis {drift_basis!r}; set design.drift_basis to one of "
                           f"{', '.join(DRIFT_MODELS)}")
     dt = _check_dt(dt_s)
     for col in ("onset", "duration", "condition"):
         if col not in events.columns:
             raise DesignError(f"events table has no {col!r} column; found {list(events.columns)}")
     if hrf == "fir" and any(len(v) for v in mods.values()):
-        raise DesignError("parametric modulators need a gamma HRF model, not fir; "
+        raise DesignError("parametric modulators need a gamma response model, not fir; "
                           "remove the modulators or choose another design.hrf")
     cond_values = events["condition"].astype(str)
     order = _ordered_conditions(list(cond_values), list(conditions))

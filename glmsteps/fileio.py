@@ -110,6 +110,26 @@ def read_tsv(path: str | os.PathLike[str]) -> pd.DataFrame:
         return pd.DataFrame()
 
 
+def read_user_tsv(path: str | os.PathLike[str], error: type[Exception], fix: str) -> "pd.DataFrame":
+    """Read a user's TSV (:func:`read_tsv`); an unreadable file raises ``error`` in one line.
+
+    Parameters
+    ----------
+    path : path-like
+        The table.
+    error : exception class
+        The ``glmsteps.errors`` class to raise (EventsError, ConfoundsError, ...).
+    fix : str
+        How to fix it, appended to the message.
+    """
+    import pandas as pd
+
+    try:
+        return read_tsv(path)
+    except (OSError, UnicodeDecodeError, pd.errors.ParserError) as exc:
+        raise error(f"{path}: cannot read as a tab-separated table with a header line ({exc}); {fix}") from exc
+
+
 def read_numeric_tsv(path: str | os.PathLike[str]) -> tuple[list[str], np.ndarray]:
     """Read an all-numeric TSV with a header row (e.g. a design matrix) without pandas.
 

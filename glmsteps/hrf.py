@@ -225,7 +225,7 @@ def fir_kernels(dt_s: float, n_bins: int, bin_width_s: float) -> npt.NDArray[np.
 
 def hrf_basis(model: ResponseModel, dt_s: float, *, fir_bins: int = 0, fir_bin_width_s: float = 0.0,
               length_s: float = KERNEL_LENGTH_S) -> tuple[npt.NDArray[np.float64], list[str]]:
-    """Sampled kernels of an HRF model.
+    """Sampled kernels of an response model.
 
     Parameters
     ----------
@@ -268,7 +268,7 @@ def hrf_basis(model: ResponseModel, dt_s: float, *, fir_bins: int = 0, fir_bin_w
     The derivative kernels are not orthogonalised against the main kernel.
     """
     if model not in HRF_MODELS:
-        raise ConfigError(f"unknown HRF model {model!r}; use one of {', '.join(HRF_MODELS)}")
+        raise ConfigError(f"unknown response model {model!r}; use one of {', '.join(HRF_MODELS)}")
     if model == "fir":
         kernels = fir_kernels(dt_s, fir_bins, fir_bin_width_s)
         return kernels, [f"fir{k:02d}" for k in range(kernels.shape[1])]

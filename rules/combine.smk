@@ -1,8 +1,8 @@
-# Fixed-effects combination of a subject's runs (t contrasts only).
+# Fixed-effects combination of a subject's runs (t contrasts only), computed from the run
+# fits: one job per subject and contrast, whether or not run-level maps are written.
 rule combine_runs:
     input:
-        effect=run_effects,
-        variance=run_variances,
+        fit=subject_fits,
     output:
         effect=SUBJECT_DIR + "/contrast-{contrast}/effect.nii.gz",
         variance=SUBJECT_DIR + "/contrast-{contrast}/variance.nii.gz",
@@ -10,7 +10,7 @@ rule combine_runs:
         z=SUBJECT_DIR + "/contrast-{contrast}/z.nii.gz",
         p=SUBJECT_DIR + "/contrast-{contrast}/p.nii.gz",
     params:
-        settings=combine_params,
+        settings=contrast_params,
     wildcard_constraints:
         contrast=T_CONTRAST,
     group:

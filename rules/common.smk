@@ -1,7 +1,11 @@
 # Helpers that turn the validated config into targets, input paths and per-step params.
 # Every params helper returns exactly the settings its step uses (and nothing broader), so
-# that Snakemake's params trigger reruns precisely what a config edit affects.
+# that Snakemake's params trigger reruns precisely what a config edit affects. Rules pass
+# them as ONE param, `settings` (a mapping with sorted keys): Snakemake records params as a
+# set of value strings, so two booleans swapping values between separate params would go
+# unnoticed, while the text of the whole mapping names every key.
 
+import functools
 import os
 import re
 import sys
@@ -55,6 +59,8 @@ CONTRASTS = config["contrasts"]
 T_CONTRASTS = [name for name, spec in CONTRASTS.items() if "weights" in spec]
 F_CONTRASTS = [name for name, spec in CONTRASTS.items() if "rows" in spec]
 THRESHOLDS = config["thresholds"]
+#: Write run-level contrast maps (and threshold them)? Subject maps never need them.
+RUN_MAPS = config["contrast_options"]["run_maps"]
 GROUP_MODELS = config["group_models"]
 _check_names("contrast", CONTRASTS)
 for _level in ("run", "subject", "group"):
@@ -128,18 +134,9 @@ def runs_of(subject):
     return [r.run_id for r in RUNS_OF_SUBJECT[subject]]
 
 
-def run_maps_of(wildcards, stat):
-    """One subject's run-level maps of a t contrast (one per run)."""
-    return [f"{OUT}/sub-{wildcards.subject}/{rid}/contrast-{wildcards.contrast}/{stat}.nii.gz"
-            for rid in runs_of(wildcards.subject)]
-
-
-def run_effects(wildcards):
-    return run_maps_of(wildcards, "effect")
-
-
-def run_variances(wildcards):
-    return run_maps_of(wildcards, "variance")
+def subject_fits(wildcards):
+    """A subject's run fits (fit.h5), in run order."""
+    return [f"{OUT}/sub-{wildcards.subject}/{rid}/fit.h5" for rid in runs_of(wildcards.subject)]
 
 
 def subject_underlay(wildcards):
@@ -165,6 +162,30 @@ def subject_variances(wildcards):
 
 
 # ---------------------------------------------------------------- params (one helper per step)
+def canonical(value):
+    """Params in a canonical form: mappings with sorted keys, all the way down.
+
+    Snakemake compares a job's params with the recorded ones as text, so the key order of
+    the config file must not matter: reordering keys must not trigger reruns.
+    """
+    if isinstance(value, dict):
+        return {k: canonical(value[k]) for k in sorted(value)}
+    if isinstance(value, (list, tuple)):
+        return [canonical(v) for v in value]
+    return value
+
+
+def _canonical_params(helper):
+    """Wrap a params helper so that its result is canonical (signature kept for Snakemake)."""
+
+    @functools.wraps(helper)
+    def wrapped(*args, **kwargs):
+        return canonical(helper(*args, **kwargs))
+
+    return wrapped
+
+
+@_canonical_params
 def events_params():
     """validate_events: the condition column, modulator columns and TR."""
     modulators = sorted({c for cols in config["events"]["modulators"].values() for c in cols})
@@ -172,17 +193,19 @@ def events_params():
             "repetition_time_s": config["acquisition"]["repetition_time_s"]}
 
 
+@_canonical_params
 def confounds_params():
     """select_confounds: the whole confounds section (selection, expansion, censoring)."""
     section = dict(config["confounds"])
     return section
 
 
+@_canonical_params
 def design_params():
     """build_design: HRF, drift, timing and condition settings."""
     d = config["design"]
     return {"hrf": d["hrf"], "fir_bins": d["fir_bins"], "fir_bin_width_s": d["fir_bin_width_s"],
-            "time_resolution_s": d["time_resolution_s"], "drift_basis": d["drift"]["model"],
+            "time_resolution_s": d["time_resolution_s"], "drift_basis": d["drift"]["basis"],
             "cutoff_s": d["drift"]["cutoff_s"], "legendre_order": d["drift"]["legendre_order"],
             "repetition_time_s": config["acquisition"]["repetition_time_s"],
             "volume_time_fraction": config["acquisition"]["volume_time_fraction"],
@@ -190,8 +213,9 @@ def design_params():
             "modulators": {k: list(v) for k, v in config["events"]["modulators"].items()}}
 
 
+@_canonical_params
 def fit_params():
-    """fit: scaling and noise model (chunk size and threads do not change results)."""
+    """fit: scaling and autocorrelation model (chunk size and threads do not change results)."""
     f = config["fit"]
     return {"scaling": f["scaling"], "grand_mean_value": f["grand_mean_value"], "autocorrelation": f["autocorrelation"],
             "ar_order": f["ar_order"], "ar_smoothing_fwhm_mm": f["ar_smoothing_fwhm_mm"],
@@ -204,14 +228,10 @@ def _contrast_params(name):
             "skip_nonestimable": config["contrast_options"]["skip_nonestimable"]}
 
 
+@_canonical_params
 def contrast_params(wildcards):
     """contrast (t or F): this contrast's definition only."""
     return _contrast_params(wildcards.contrast)
-
-
-def combine_params(wildcards):
-    """combine_runs: the contrast's name and tail."""
-    return {"name": wildcards.contrast, "tail": CONTRASTS[wildcards.contrast].get("tail", "two-sided")}
 
 
 _THRESHOLD_KEYS = {
@@ -229,14 +249,17 @@ def _threshold_params(level, name):
     return {"name": name, "method": setting["method"], **{k: setting[k] for k in keys}}
 
 
+@_canonical_params
 def run_threshold_params(wildcards):
     return _threshold_params("run", wildcards.threshold)
 
 
+@_canonical_params
 def subject_threshold_params(wildcards):
     return _threshold_params("subject", wildcards.threshold)
 
 
+@_canonical_params
 def group_threshold_params(wildcards):
     return _threshold_params("group", wildcards.threshold)
 
@@ -248,6 +271,7 @@ _GROUP_MODEL_KEYS = ("design", "covariates", "site_column", "site_as_covariate",
                      "mask_fraction")
 
 
+@_canonical_params
 def group_model_params(wildcards):
     """group_model: the model's settings for its design and this job's group contrast only."""
     spec = GROUP_MODELS[wildcards.model]
@@ -257,6 +281,7 @@ def group_model_params(wildcards):
                          "weights": dict(spec["group_contrasts"][wildcards.group_contrast])}}
 
 
+@_canonical_params
 def group_permutation_params(wildcards):
     """group_permutation: the model, the group contrast and the permutation settings."""
     return {**group_model_params(wildcards), "permutation": dict(GROUP_MODELS[wildcards.model]["permutation"])}
@@ -298,8 +323,8 @@ def run_targets():
     targets = []
     for r in RUNS:
         base = f"{OUT}/sub-{r.subject}/{r.run_id}"
-        targets += [f"{base}/design_correlation.png", f"{base}/confounds.png"]
-        for name in CONTRASTS:
+        targets += [f"{base}/design_correlation.png", f"{base}/confounds.png", f"{base}/fit.h5"]
+        for name in CONTRASTS if RUN_MAPS else []:
             targets.append(f"{base}/contrast-{name}/z.nii.gz")
             targets += [f"{base}/contrast-{name}/threshold-{t}/clusters.tsv" for t in THRESHOLDS["run"]]
     return targets
@@ -333,7 +358,7 @@ def group_targets():
 def indexed_maps():
     """Every statistical map that index.tsv lists."""
     maps = []
-    for r in RUNS:
+    for r in RUNS if RUN_MAPS else []:
         base = f"{OUT}/sub-{r.subject}/{r.run_id}"
         for name in T_CONTRASTS:
             maps += [f"{base}/contrast-{name}/{s}.nii.gz" for s in ("effect", "variance", "t", "z", "p")]

@@ -6,7 +6,7 @@ rule select_confounds:
         summary=RUN_DIR + "/confounds.json",
         figure=RUN_DIR + "/confounds.png",
     params:
-        **confounds_params(),
+        settings=confounds_params(),
     log:
         LOG_DIR + "/sub-{subject}/{run_id}/select_confounds.log",
     script:

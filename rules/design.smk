@@ -9,7 +9,7 @@ rule build_design:
         figure=RUN_DIR + "/design.png",
         correlation_figure=RUN_DIR + "/design_correlation.png",
     params:
-        **design_params(),
+        settings=design_params(),
     log:
         LOG_DIR + "/sub-{subject}/{run_id}/build_design.log",
     script:

@@ -6,7 +6,7 @@ rule validate_events:
         events=RUN_DIR + "/events.tsv",
         summary=RUN_DIR + "/events.json",
     params:
-        **events_params(),
+        settings=events_params(),
     log:
         LOG_DIR + "/sub-{subject}/{run_id}/validate_events.log",
     script:

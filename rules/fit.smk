@@ -10,7 +10,7 @@ rule fit:
         residual_sd=RUN_DIR + "/residual_sd.nii.gz",
         ar_coef=RUN_DIR + "/ar_coef.nii.gz",
     params:
-        **fit_params(),
+        settings=fit_params(),
     resources:
         mem_mb=fit_mem_mb,
         runtime=30,

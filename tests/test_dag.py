@@ -32,6 +32,17 @@ def test_finished_study_plans_nothing(toy_results):
     assert _plan(toy_results) == []
 
 
+def _reorder(value):
+    """The same config with every mapping's keys in reverse order."""
+    if isinstance(value, dict):
+        return {k: _reorder(value[k]) for k in reversed(list(value))}
+    return value
+
+
+def test_reordering_config_keys_plans_nothing(toy_results):
+    assert _plan(toy_results, _reorder(copy.deepcopy(toy_results.config))) == []
+
+
 def test_adding_a_contrast_runs_only_its_jobs(toy_results):
     config = copy.deepcopy(toy_results.config)
     config["contrasts"]["tap_minus_flash"] = {"weights": {"tap": 1, "flash": -1}}

@@ -133,7 +133,7 @@ def test_fir_basis_is_disjoint_boxcars() -> None:
 
 
 def test_invalid_basis_settings() -> None:
-    with pytest.raises(ConfigError, match="unknown HRF model"):
+    with pytest.raises(ConfigError, match="unknown response model"):
         hrf.hrf_basis("triple_gamma", 0.1)  # type: ignore[arg-type]
     with pytest.raises(ConfigError, match="fir_bins"):
         hrf.hrf_basis("fir", 0.1, fir_bins=0, fir_bin_width_s=2.0)

@@ -223,30 +223,34 @@ def test_contrast_job_excluded_run_writes_nan_maps(tmp_path):
 # combine_runs
 # ---------------------------------------------------------------------------------------------
 
+COMBINE_PARAMS = {"name": "a_vs_b", "definition": {"weights": {"A": 1, "B": -1}}, "tail": "two-sided",
+                  "skip_nonestimable": True}
+
+
 def _run_maps(tmp_path, seeds, zero_b_runs=()):
-    effects, variances = [], []
+    """Fits of a few runs, and their run-level maps from the contrast job (the reference path)."""
+    fits, effects, variances = [], [], []
     for i, seed in enumerate(seeds, start=1):
         run_id = f"task-gamble_run-{i}"
         fit = tmp_path / run_id / "fit.h5"
         fit.parent.mkdir(parents=True)
         _write_fit(fit, seed=seed, zero_b=i in zero_b_runs)
         out = _outputs(tmp_path / run_id / "contrast-a_vs_b", ("effect", "variance", "t", "z", "p"))
-        params = {"name": "a_vs_b", "definition": {"weights": {"A": 1, "B": -1}}, "tail": "two-sided",
-                  "skip_nonestimable": True}
-        contrast_job.run({"fit": str(fit)}, out, params, {**WILD, "run_id": run_id})
+        contrast_job.run({"fit": str(fit)}, out, COMBINE_PARAMS, {**WILD, "run_id": run_id})
+        fits.append(str(fit))
         effects.append(out["effect"])
         variances.append(out["variance"])
-    return effects, variances
+    return fits, effects, variances
 
 
 def test_combine_job_matches_hand_inverse_variance_mean(tmp_path):
-    effects, variances = _run_maps(tmp_path, seeds=(3, 4, 5), zero_b_runs=(2,))
+    fits, effects, variances = _run_maps(tmp_path, seeds=(3, 4, 5), zero_b_runs=(2,))
     out = _outputs(tmp_path / "combined", ("effect", "variance", "t", "z", "p"))
-    combine_job.run({"effect": effects, "variance": variances}, out, {"name": "a_vs_b", "tail": "two-sided"},
-                    {"subject": "01", "contrast": "a_vs_b"})
+    combine_job.run({"fit": fits}, out, COMBINE_PARAMS, {"subject": "01", "contrast": "a_vs_b"})
     e = np.stack([_load(effects[i]).ravel() for i in (0, 2)])
     v = np.stack([_load(variances[i]).ravel() for i in (0, 2)])
-    # reference: inverse-variance weighted mean by hand with numpy (Cochran 1954); NaN = run missing
+    # reference: inverse-variance weighted mean by hand with numpy (Cochran 1954) of the run-level
+    # maps the contrast step wrote (float32); NaN = run missing
     w = np.where(np.isfinite(v), 1 / v, 0.0)
     with np.errstate(invalid="ignore"):
         expected = np.nansum(w * np.nan_to_num(e), 0) / w.sum(0)
@@ -258,24 +262,27 @@ def test_combine_job_matches_hand_inverse_variance_mean(tmp_path):
     assert side["map"]["level"] == "subject" and side["map"]["run"] == "" and side["map"]["session"] == ""
     assert side["runs_used"] == ["task-gamble_run-1", "task-gamble_run-3"]
     assert side["runs_left_out"][0]["run"] == "task-gamble_run-2" and side["dof"] == 2 * 44
+    assert [d["path"].endswith("fit.h5") for d in side["inputs"]["fit"]] == [True] * 3
 
 
 def test_combine_job_all_skipped_and_grid_mismatch(tmp_path):
-    effects, variances = _run_maps(tmp_path, seeds=(6, 7), zero_b_runs=(1, 2))
+    fits, _, _ = _run_maps(tmp_path, seeds=(6, 7), zero_b_runs=(1, 2))
     out = _outputs(tmp_path / "combined", ("effect", "variance", "t", "z", "p"))
     with pytest.raises(ContrastError) as info:
-        combine_job.run({"effect": effects, "variance": variances}, out, {"name": "a_vs_b", "tail": "two-sided"},
-                        {"subject": "01", "contrast": "a_vs_b"})
+        combine_job.run({"fit": fits}, out, COMBINE_PARAMS, {"subject": "01", "contrast": "a_vs_b"})
     assert "\n" not in str(info.value) and "skipped or excluded" in str(info.value)
-    # a run on another grid
+    # not estimable without skip_nonestimable: the run-level error, naming contrast and run
+    with pytest.raises(ContrastError, match="a_vs_b.*task-gamble_run-1"):
+        combine_job.run({"fit": fits}, out, {**COMBINE_PARAMS, "skip_nonestimable": False},
+                        {"subject": "01", "contrast": "a_vs_b"})
+    # a run on another grid (affine shifted by 2 mm)
     other = tmp_path / "other"
     other.mkdir()
-    e2, v2 = _run_maps(other, seeds=(8, 9))
-    save_nifti(e2[1], np.zeros((7, 5, 4)), AFFINE)
-    save_nifti(v2[1], np.ones((7, 5, 4)), AFFINE)
+    f2, _, _ = _run_maps(other, seeds=(8, 9))
+    with h5py.File(f2[1], "r+") as h5:
+        h5["grid/affine"][0, 3] += 2.0
     with pytest.raises(DataError) as info:
-        combine_job.run({"effect": e2, "variance": v2}, out, {"name": "a_vs_b", "tail": "two-sided"},
-                        {"subject": "01", "contrast": "a_vs_b"})
+        combine_job.run({"fit": f2}, out, COMBINE_PARAMS, {"subject": "01", "contrast": "a_vs_b"})
     assert "\n" not in str(info.value) and "task-gamble_run-2" in str(info.value)
     assert not (tmp_path / "combined").exists()
 

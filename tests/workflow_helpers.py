@@ -71,17 +71,19 @@ def make_workspace(base: Path, data: Path, **overrides: Any) -> Workspace:
     return ws
 
 
-_JOB = re.compile(r"^rule (\S+):\s*$")
-_WILDCARDS = re.compile(r"^\s+wildcards: (.*)$")
+_JOB = re.compile(r"^(?:local)?rule (\S+):$")
+_WILDCARDS = re.compile(r"^wildcards: (.*)$")
 
 
 def planned_jobs(dry_run_output: str) -> list[tuple[str, dict[str, str]]]:
-    """(rule, wildcards) of every job a dry run would execute."""
+    """(rule, wildcards) of every job a dry run would execute (grouped jobs included).
+
+    Jobs of a group are printed indented under ``group job ...``; indentation is ignored.
+    """
     jobs: list[tuple[str, dict[str, str]]] = []
-    for line in dry_run_output.splitlines():
-        m = _JOB.match(line.strip()) if line.startswith("rule ") or line.startswith("localrule ") else None
-        if line.startswith("localrule "):
-            m = re.match(r"^localrule (\S+):\s*$", line.strip())
+    for raw in dry_run_output.splitlines():
+        line = raw.strip()
+        m = _JOB.match(line)
         if m:
             jobs.append((m.group(1), {}))
             continue

@@ -18,7 +18,7 @@ import pandas as pd
 
 from ..confounds import clean_confound_values, prepare_confounds
 from ..errors import ConfigError, ConfoundsError
-from ..fileio import read_tsv, write_json, write_tsv
+from ..fileio import read_user_tsv, read_tsv, write_json, write_tsv
 from ..plots.confounds import plot_confounds
 from ..plots.style import save_figure
 from ..provenance import build_record, collect_warnings, sidecar_path, write_sidecar
@@ -54,11 +54,7 @@ def _check_params(params: Mapping[str, Any]) -> None:
 
 
 def _read_confounds(path: str) -> pd.DataFrame:
-    try:
-        return read_tsv(path)
-    except (OSError, UnicodeDecodeError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
-        raise ConfoundsError(f"{path}: cannot read as a tab-separated table with a header line ({exc}); "
-                             "save it as a TSV with one row per volume") from exc
+    return read_user_tsv(path, ConfoundsError, "save it as a TSV with one row per volume")
 
 
 def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],

@@ -49,7 +49,8 @@ def check_output_keys(kind: str, outputs: Mapping[str, str], name: str) -> None:
                           f"the rule declares {sorted(outputs)}; fix the rule's outputs for this contrast kind")
 
 
-def _settings(params: Mapping[str, Any]) -> tuple[str, Any, Any, bool]:
+def contrast_settings(params: Mapping[str, Any]) -> tuple[str, Any, Any, bool]:
+    """name, definition, tail and skip_nonestimable from a contrast step's params (checked)."""
     missing = [k for k in ("name", "definition") if k not in params]
     if missing:
         raise ConfigError(f"{STEP}: params lack {missing}; pass name, definition, tail, skip_nonestimable")
@@ -59,43 +60,72 @@ def _settings(params: Mapping[str, Any]) -> tuple[str, Any, Any, bool]:
     return str(params["name"]), params["definition"], params.get("tail"), skip
 
 
+def contrast_of_fit(fit: Any, spec: Any, skip: bool, run_label: str, fit_path: str
+                    ) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    """One run's contrast maps (per fitted voxel) and the sidecar fields that describe them.
+
+    Parameters
+    ----------
+    fit : StoredFit
+        The run's stored fit.
+    spec : ContrastSpec
+        The parsed contrast.
+    skip : bool
+        When the contrast is not estimable: return all-NaN maps marked ``skipped``
+        instead of raising.
+    run_label, fit_path : str
+        For messages.
+
+    Returns
+    -------
+    maps : dict of stat -> ndarray (v,)
+    extra : dict
+        ``kind``, ``tail``, ``excluded``, ``estimable``, ``efficiency``, ``dof``
+        (median residual dof), ``weights``, and ``skipped``/``reason`` when applicable.
+
+    Raises
+    ------
+    ContrastError
+        Not estimable and ``skip`` is false.
+    """
+    n_vox = len(fit.voxel_index)
+    extra: dict[str, Any] = {"kind": spec.kind, "tail": spec.tail if spec.kind == "t" else None}
+    if fit.excluded:
+        extra.update(excluded=True, estimable=None, efficiency=None, dof=None,
+                     reason="run excluded upstream (too many censored volumes)")
+        try:
+            extra["weights"] = _weights(contrast_matrix(spec, list(fit.names), list(fit.conditions),
+                                                        list(fit.basis)), list(fit.names))
+        except ContrastError:
+            extra["weights"] = None
+        return {k: np.full(n_vox, np.nan) for k in MAP_KEYS[spec.kind]}, extra
+    result = evaluate_contrast(spec, np.asarray(fit.design), list(fit.names), list(fit.conditions),
+                               list(fit.basis), fit.beta, fit.residual_variance, fit.bin,
+                               fit.bin_covariance, fit.dof)
+    if not result.estimable and not skip:
+        raise ContrastError(f"contrast {spec.name!r} is not estimable in {run_label} ({fit_path}): "
+                            f"{result.reason}; drop it from this run's weights or set skip_nonestimable: true")
+    extra.update(estimable=result.estimable, efficiency=result.efficiency, dof=result.dof2,
+                 weights=_weights(result.C, fit.names), excluded=False)
+    if spec.kind == "F":
+        extra["dof1"] = result.dof1
+    if not result.estimable:
+        extra.update(skipped=True, reason=result.reason)
+    return result.maps, extra
+
+
 def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],
         wildcards: Mapping[str, str], threads: int = 1) -> None:
     """Compute and write one run's contrast maps (see the module docstring)."""
-    from glmsteps.fitstore import read_fit  # written in parallel by the fit stage
+    from glmsteps.fitstore import read_fit
 
-    name, definition, tail, skip = _settings(params)
+    name, definition, tail, skip = contrast_settings(params)
     spec = parse_spec(name, definition, tail)
     check_output_keys(spec.kind, outputs, name)
     key = parse_run_id(str(wildcards["subject"]), str(wildcards["run_id"]))
-    run_label = f"sub-{key.subject} {key.run_id}"
     fit = read_fit(inputs["fit"])
-    n_vox = len(fit.voxel_index)
-    extra: dict[str, Any] = {"kind": spec.kind, "tail": spec.tail if spec.kind == "t" else None}
     with provenance.collect_warnings() as seen:
-        if fit.excluded:
-            maps = {k: np.full(n_vox, np.nan) for k in MAP_KEYS[spec.kind]}
-            extra.update(excluded=True, estimable=None, efficiency=None, dof=None,
-                         reason="run excluded upstream (too many censored volumes)")
-            try:
-                C = contrast_matrix(spec, list(fit.names), list(fit.conditions), list(fit.basis))
-                extra["weights"] = _weights(C, list(fit.names))
-            except ContrastError:
-                extra["weights"] = None
-        else:
-            result = evaluate_contrast(spec, np.asarray(fit.design), list(fit.names), list(fit.conditions),
-                                      list(fit.basis), fit.beta, fit.residual_variance, fit.bin,
-                                      fit.bin_covariance, fit.dof)
-            if not result.estimable and not skip:
-                raise ContrastError(f"contrast {name!r} is not estimable in {run_label} ({inputs['fit']}): "
-                                    f"{result.reason}; drop it from this run's weights or set skip_nonestimable: true")
-            maps = result.maps
-            extra.update(estimable=result.estimable, efficiency=result.efficiency, dof=result.dof2,
-                         weights=_weights(result.C, fit.names), excluded=False)
-            if spec.kind == "F":
-                extra["dof1"] = result.dof1
-            if not result.estimable:
-                extra.update(skipped=True, reason=result.reason)
+        maps, extra = contrast_of_fit(fit, spec, skip, f"sub-{key.subject} {key.run_id}", inputs["fit"])
     record = provenance.build_record(STEP, params, {"fit": inputs["fit"]}, warnings_seen=seen)
     for stat in MAP_KEYS[spec.kind]:
         block = map_block("run", key.subject, key.session, key.task, key.run, name, stat)

@@ -130,9 +130,8 @@ def read_confounds_summary(path: str | os.PathLike[str]) -> tuple[int, int, bool
 
 def read_confounds(path: str | os.PathLike[str], n_volumes: int) -> pd.DataFrame:
     """Read the selected confounds and check one finite row per acquired volume."""
-    try:
-        table = read_tsv(path)
-    except pd.errors.EmptyDataError:
+    table = read_tsv(path)
+    if table.shape[1] == 0:  # no confound selected and no censoring: a table of no columns
         table = pd.DataFrame(index=range(n_volumes))
     if len(table) != n_volumes:
         raise DesignError(f"{path}: {len(table)} rows, expected one per volume ({n_volumes}); "

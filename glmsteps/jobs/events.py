@@ -20,7 +20,7 @@ import pandas as pd
 
 from ..errors import ConfigError, DataError, EventsError, GlmstepsWarning
 from ..events import validate_events
-from ..fileio import read_tsv, write_json, write_tsv
+from ..fileio import read_user_tsv, read_tsv, write_json, write_tsv
 from ..provenance import build_record, collect_warnings, sidecar_path, write_sidecar
 
 STEP = "validate_events"
@@ -87,11 +87,7 @@ def _check_params(params: Mapping[str, Any]) -> None:
 
 
 def _read_events(path: str) -> pd.DataFrame:
-    try:
-        return read_tsv(path)
-    except (OSError, UnicodeDecodeError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
-        raise EventsError(f"{path}: cannot read as a tab-separated table with a header line ({exc}); "
-                          "save it as a BIDS events TSV") from exc
+    return read_user_tsv(path, EventsError, "save it as a BIDS events TSV")
 
 
 def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],

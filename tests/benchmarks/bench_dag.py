@@ -33,7 +33,7 @@ def make_study(root: Path, n_subjects: int, n_runs: int = 4) -> None:
     (root / "participants.tsv").write_text("participant_id\tsite\n")
 
 
-def make_config(root: Path, n_contrasts: int = 10, run_thresholds: bool = False) -> dict:
+def make_config(root: Path, n_contrasts: int = 10, run_maps: bool = False) -> dict:
     conditions = [f"cond{k}" for k in range(5)]
     contrasts = {f"c{k:02d}": {"weights": {conditions[k % 5]: 1, conditions[(k + 1) % 5]: -1}}
                  for k in range(n_contrasts)}
@@ -44,18 +44,19 @@ def make_config(root: Path, n_contrasts: int = 10, run_thresholds: bool = False)
                    "confounds": "sub-{subject}/func/sub-{subject}_task-{task}_run-{run}_confounds.tsv",
                    "mask": "sub-{subject}/anat/sub-{subject}_mask.nii.gz"},
         "contrasts": contrasts,
-        "thresholds": {"run": {"fdr05": {"method": "fdr", "q": 0.05}} if run_thresholds else {},
+        "contrast_options": {"run_maps": run_maps},
+        "thresholds": {"run": {"fdr05": {"method": "fdr", "q": 0.05}} if run_maps else {},
                        "subject": {"fdr05": {"method": "fdr", "q": 0.05}}},
         "group_models": {"all": {"design": "one_sample", "group_contrasts": {"mean": {"mean": 1}}}},
     }
 
 
-def measure(n_subjects: int, run_thresholds: bool) -> tuple[float, float, int]:
+def measure(n_subjects: int, run_maps: bool) -> tuple[float, float, int]:
     with tempfile.TemporaryDirectory() as tmp:
         root = Path(tmp) / "data"
         make_study(root, n_subjects)
         cfg = Path(tmp) / "config.yaml"
-        cfg.write_text(yaml.safe_dump(make_config(root, run_thresholds=run_thresholds)))
+        cfg.write_text(yaml.safe_dump(make_config(root, run_maps=run_maps)))
         env = dict(os.environ, PYTHONPATH=str(REPO))
         cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "Snakefile"), "--directory", tmp,
                "--configfile", str(cfg), "--dry-run", "--quiet", "rules", "--cores", "2"]
@@ -70,13 +71,14 @@ def measure(n_subjects: int, run_thresholds: bool) -> tuple[float, float, int]:
 
 
 def main(sizes: list[int]) -> None:
-    """Print one row per size and layout: with per-run thresholds (every run-level map
-    thresholded) and without (the default: run-level thresholds are opt-in QC)."""
-    print(f"{'subjects':>8} {'run thresholds':>15} {'jobs':>8} {'wall s':>8} {'ms/job':>7} {'peak MB':>8}")
+    """Print one row per size and layout: with run-level maps (one contrast job per run and
+    contrast, each thresholded) and without (``contrast_options.run_maps: false``: subject
+    maps straight from the fits, one job per subject and contrast)."""
+    print(f"{'subjects':>8} {'run maps':>9} {'jobs':>8} {'wall s':>8} {'ms/job':>7} {'peak MB':>8}")
     for n in sizes:
-        for run_thresholds in (True, False):
-            wall, peak, jobs = measure(n, run_thresholds)
-            print(f"{n:>8} {str(run_thresholds):>15} {jobs:>8} {wall:>8.1f} {1000 * wall / max(jobs, 1):>7.2f} {peak:>8.0f}")
+        for run_maps in (True, False):
+            wall, peak, jobs = measure(n, run_maps)
+            print(f"{n:>8} {str(run_maps):>9} {jobs:>8} {wall:>8.1f} {1000 * wall / max(jobs, 1):>7.2f} {peak:>8.0f}")
 
 
 if __name__ == "__main__":
