@@ -31,6 +31,23 @@ import numpy.typing as npt
 
 from .errors import DataError
 
+
+def _decompression_errors() -> tuple[type[BaseException], ...]:
+    """Exceptions a truncated or corrupt .nii.gz raises while it is decompressed."""
+    import zlib
+
+    errors: list[type[BaseException]] = [EOFError, zlib.error, gzip.BadGzipFile]
+    try:
+        from isal import isal_zlib
+
+        errors.append(isal_zlib.error)
+    except ImportError:  # isal is optional: plain gzip is the fallback
+        pass
+    return tuple(errors)
+
+
+_DECOMPRESSION_ERRORS = _decompression_errors()
+
 #: Relative tolerance of the TR check.
 TR_RELATIVE_TOLERANCE = 0.01
 #: Tolerance of the affine comparison between mask and BOLD (mm).
@@ -362,6 +379,9 @@ def stream_masked(bold: BoldHeader, mask: npt.NDArray[np.bool_], first_volume: i
             if bold.compressed:
                 while stream.read(1 << 20):
                     pass
+        except _DECOMPRESSION_ERRORS as exc:
+            raise DataError(f"{bold.path}: cannot decompress the image data ({type(exc).__name__}: {exc}); "
+                            "the file is truncated or corrupt, regenerate or copy it again") from exc
         finally:
             if stream is not braw:
                 stream.close()

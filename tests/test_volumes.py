@@ -97,6 +97,16 @@ def test_truncated_file_is_a_data_error(tmp_path: Path, series: np.ndarray) -> N
         stream_masked(read_bold_header(path), make_mask())
 
 
+def test_truncated_gzip_is_a_data_error(tmp_path: Path, series: np.ndarray) -> None:
+    """A .nii.gz cut short (header intact, compressed stream cut off) is a one-line DataError."""
+    path = tmp_path / "t.nii.gz"
+    write_bold(path, series)
+    path.write_bytes(path.read_bytes()[:1000])
+    with pytest.raises(DataError, match="truncated or corrupt") as info:
+        stream_masked(read_bold_header(path), make_mask())
+    assert "\n" not in str(info.value) and str(path) in str(info.value)
+
+
 def test_3d_bold_is_rejected(tmp_path: Path) -> None:
     path = tmp_path / "vol.nii.gz"
     nib.save(nib.Nifti1Image(np.zeros(SHAPE, np.float32), AFFINE), path)

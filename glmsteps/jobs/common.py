@@ -79,4 +79,8 @@ def run_script(job: JobFunction, smk: SnakemakeLike) -> None:
     except GlmstepsError as exc:
         logger.error("%s: %s", type(exc).__name__, exc)
         sys.exit(1)
+    except Exception:
+        # not a user error: keep the whole traceback in the step's log, then fail
+        logger.exception("unexpected error (a bug in glmsteps; please report it with this log)")
+        raise
     logger.info("done in %.2f s", time.perf_counter() - start)
