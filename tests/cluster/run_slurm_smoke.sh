@@ -22,15 +22,9 @@ here=$(cd "$(dirname "${BASH_SOURCE[0]}")" && pwd)
 repo=$(cd "$here/../.." && pwd)
 export GS_SLURM_ACCOUNTING=${GS_SLURM_ACCOUNTING:-none}
 
-if [[ -n ${GS_PYTHON:-} ]]; then
-  python=$GS_PYTHON
-elif [[ -n ${VIRTUAL_ENV:-} && -x $VIRTUAL_ENV/bin/python ]]; then
-  python=$VIRTUAL_ENV/bin/python
-elif [[ -x /work/venv/bin/python ]]; then
-  python=/work/venv/bin/python
-else
-  python=python3
-fi
+# shellcheck source=tests/cluster/lib.sh
+source "$here/lib.sh"
+choose_python
 
 say() { printf '[slurm_smoke] %s\n' "$*" >&2; }
 
@@ -52,15 +46,8 @@ else
   keep_work=false
 fi
 
-now() { date +%s.%N; }
-timings=()
 t0=$(now)
 t_all=$t0
-seconds_since() { awk -v a="$(now)" -v b="$1" 'BEGIN { printf "%7.1f", a - b }'; }
-lap() { # lap <stage>: record the time since the previous lap
-  timings+=("$(printf '%-22s %s s' "$1" "$(seconds_since "$t0")")")
-  t0=$(now)
-}
 
 passed=false
 smk_pid=""
@@ -69,21 +56,7 @@ finish() {
   trap - EXIT INT TERM
   set +e  # clean up as far as possible, whatever fails
   t0=$(now)
-  # interrupted during the run: SIGTERM stops our snakemake from submitting
-  # more; the stop script cancels the SLURM jobs and stops the daemons; a
-  # snakemake still waiting for its cancelled jobs after that is killed
-  local smk_alive=false
-  if [[ -n $smk_pid ]] && kill -0 "$smk_pid" 2>/dev/null; then
-    say "stopping snakemake (pid $smk_pid)"
-    kill -TERM "$smk_pid" 2>/dev/null
-    smk_alive=true
-    sleep 1
-  fi
-  bash "$here/stop_local_slurm.sh" || true
-  if $smk_alive && kill -0 "$smk_pid" 2>/dev/null; then
-    kill -KILL "$smk_pid" 2>/dev/null
-    wait "$smk_pid" 2>/dev/null  # reap it (status 137)
-  fi
+  stop_run_and_cluster
   lap "stop cluster"
   timings+=("$(printf '%-22s %s s' total "$(seconds_since "$t_all")")")
   say "timings (accounting: $GS_SLURM_ACCOUNTING):"

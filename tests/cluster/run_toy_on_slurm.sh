@@ -48,15 +48,9 @@ stages=${GS_TOY_STAGES:-compare failure}
 kept=${GS_TOY_LOCAL_RUN:-${GLMSTEPS_KEEP_TOY_RUN:-}}
 corruption=${GS_TOY_CORRUPTION:-truncate}
 
-if [[ -n ${GS_PYTHON:-} ]]; then
-  python=$GS_PYTHON
-elif [[ -n ${VIRTUAL_ENV:-} && -x $VIRTUAL_ENV/bin/python ]]; then
-  python=$VIRTUAL_ENV/bin/python
-elif [[ -x /work/venv/bin/python ]]; then
-  python=/work/venv/bin/python
-else
-  python=python3
-fi
+# shellcheck source=tests/cluster/lib.sh
+source "$here/lib.sh"
+choose_python
 
 say() { printf '[toy_slurm] %s\n' "$*" >&2; }
 wants() { [[ " $stages " == *" $1 "* ]]; }
@@ -89,15 +83,9 @@ work=$(cd "$work" && pwd)
 # cpus one bundle of grouped jobs asks for; the local run uses as many cores
 cpus=$(nproc)
 
-now() { date +%s.%N; }
-timings=()
+LAP_WIDTH=34
 t0=$(now)
 t_all=$t0
-seconds_since() { awk -v a="$(now)" -v b="$1" 'BEGIN { printf "%7.1f", a - b }'; }
-lap() { # lap <stage>: record the time since the previous lap
-  timings+=("$(printf '%-34s %s s' "$1" "$(seconds_since "$t0")")")
-  t0=$(now)
-}
 
 passed=false
 smk_pid=""
@@ -106,21 +94,7 @@ finish() {
   trap - EXIT INT TERM
   set +e  # clean up as far as possible, whatever fails
   t0=$(now)
-  # interrupted during a run: SIGTERM stops our snakemake from submitting
-  # more; the stop script cancels the SLURM jobs and stops the daemons (by
-  # their recorded pids); a snakemake still waiting after that is killed
-  local smk_alive=false
-  if [[ -n $smk_pid ]] && kill -0 "$smk_pid" 2>/dev/null; then
-    say "stopping snakemake (pid $smk_pid)"
-    kill -TERM "$smk_pid" 2>/dev/null
-    smk_alive=true
-    sleep 1
-  fi
-  bash "$here/stop_local_slurm.sh" || true
-  if $smk_alive && kill -0 "$smk_pid" 2>/dev/null; then
-    kill -KILL "$smk_pid" 2>/dev/null
-    wait "$smk_pid" 2>/dev/null
-  fi
+  stop_run_and_cluster
   lap "stop cluster"
   timings+=("$(printf '%-34s %s s' total "$(seconds_since "$t_all")")")
   say "timings (accounting: $GS_SLURM_ACCOUNTING, $cpus cpus, stages: $stages):"

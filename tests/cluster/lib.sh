@@ -1,0 +1,49 @@
+# lib.sh - shell helpers shared by run_slurm_smoke.sh and run_toy_on_slurm.sh.
+# Source it after setting `here` (this folder); it defines:
+#   choose_python              sets $python: $GS_PYTHON, else the active venv's, else
+#                              /work/venv/bin/python, else python3
+#   now / seconds_since T / lap STAGE
+#                              stage timings collected in the array `timings`
+#                              (label width: $LAP_WIDTH, default 22)
+#   stop_run_and_cluster       stop the snakemake in $smk_pid (if any) and the local
+#                              cluster (stop_local_slurm.sh, daemons by recorded pid)
+
+choose_python() {
+  if [[ -n ${GS_PYTHON:-} ]]; then
+    python=$GS_PYTHON
+  elif [[ -n ${VIRTUAL_ENV:-} && -x $VIRTUAL_ENV/bin/python ]]; then
+    python=$VIRTUAL_ENV/bin/python
+  elif [[ -x /work/venv/bin/python ]]; then
+    python=/work/venv/bin/python
+  else
+    python=python3
+  fi
+}
+
+now() { date +%s.%N; }
+timings=()
+t0=$(now)
+t_all=$t0
+seconds_since() { awk -v a="$(now)" -v b="$1" 'BEGIN { printf "%7.1f", a - b }'; }
+lap() { # lap <stage>: record the time since the previous lap
+  timings+=("$(printf "%-${LAP_WIDTH:-22}s %s s" "$1" "$(seconds_since "$t0")")")
+  t0=$(now)
+}
+
+stop_run_and_cluster() {
+  # interrupted during a run: SIGTERM stops our snakemake from submitting more;
+  # the stop script cancels the SLURM jobs and stops the daemons (by their
+  # recorded pids); a snakemake still waiting for its cancelled jobs is killed
+  local smk_alive=false
+  if [[ -n ${smk_pid:-} ]] && kill -0 "$smk_pid" 2>/dev/null; then
+    say "stopping snakemake (pid $smk_pid)"
+    kill -TERM "$smk_pid" 2>/dev/null
+    smk_alive=true
+    sleep 1
+  fi
+  bash "$here/stop_local_slurm.sh" || true
+  if $smk_alive && kill -0 "$smk_pid" 2>/dev/null; then
+    kill -KILL "$smk_pid" 2>/dev/null
+    wait "$smk_pid" 2>/dev/null  # reap it (status 137)
+  fi
+}
