@@ -598,6 +598,50 @@ def check_ar_order(design: DesignFactors, order: int) -> int:
     return best
 
 
+def gaussian_kernel(sigma: float, truncate: float = 4.0) -> FloatArray:
+    """Normalised 1D Gaussian weights.
+
+    Parameters
+    ----------
+    sigma : float
+        Standard deviation (voxels).
+    truncate : float
+        The kernel reaches ``int(truncate * sigma + 0.5)`` voxels each side.
+
+    Returns
+    -------
+    ndarray, shape (2 r + 1,)
+        ``exp(-x^2 / (2 sigma^2))`` for ``x = -r..r``, summing to 1.
+    """
+    radius = int(truncate * sigma + 0.5)
+    x = np.arange(-radius, radius + 1, dtype=np.float64)
+    w = np.exp(-0.5 * (x / sigma) ** 2) if sigma > 0 else (x == 0).astype(np.float64)
+    return w / w.sum()
+
+
+def convolve_axis(values: FloatArray, weights: FloatArray, axis: int) -> FloatArray:
+    """Convolve along one axis with a symmetric kernel, zero outside the array.
+
+    Parameters
+    ----------
+    values : ndarray, float64
+    weights : ndarray, shape (2 r + 1,)
+        Symmetric weights (``weights[r + k] == weights[r - k]``).
+    axis : int
+
+    Returns
+    -------
+    ndarray, same shape as ``values``, float64
+    """
+    a = np.moveaxis(values, axis, 0)
+    r = (weights.size - 1) // 2
+    out = weights[r] * a
+    for k in range(1, min(r, a.shape[0] - 1) + 1):
+        out[:-k] += weights[r + k] * a[k:]
+        out[k:] += weights[r - k] * a[:-k]
+    return np.moveaxis(out, 0, axis)
+
+
 def smooth_within_mask(values: npt.NDArray[np.floating], mask: npt.NDArray[np.bool_], fwhm_mm: float,
                        voxel_size_mm: npt.ArrayLike) -> FloatArray:
     """Gaussian smoothing restricted to a mask (normalised convolution).
@@ -619,23 +663,23 @@ def smooth_within_mask(values: npt.NDArray[np.floating], mask: npt.NDArray[np.bo
     Notes
     -----
     ``s = G * (m v) / G * m`` with ``G`` the Gaussian kernel, ``sigma = FWHM /
-    sqrt(8 ln 2)``: normalised convolution (Knutsson & Westin (1993), "Normalized
-    and differential convolution", CVPR), so that values near the mask edge are
-    averaged over the mask only and not pulled toward zero.
+    sqrt(8 ln 2)``, truncated at 4 sigma: normalised convolution (Knutsson &
+    Westin (1993), "Normalized and differential convolution", CVPR), so that
+    values near the mask edge are averaged over the mask only and not pulled
+    toward zero. The separable convolution is done with numpy slices: the fit
+    job then needs no scipy, whose import alone (0.3-0.4 s) weighed on small
+    runs (``tests/benchmarks/README.md``).
     """
-    # imported here, not at module level: the fit job then loads scipy only after it has
-    # released the BOLD data, which keeps its peak memory ~17 MB lower (tests/benchmarks/README.md)
-    from scipy import ndimage
-
     m = np.asarray(mask, dtype=bool)
     vals = np.where(m, np.asarray(values, dtype=np.float64), 0.0)
     if fwhm_mm <= 0:
         return vals
     sigma = fwhm_mm / math.sqrt(8.0 * math.log(2.0)) / np.asarray(voxel_size_mm, dtype=np.float64)
-    # filtered in place (scipy.ndimage buffers each line), to keep whole-grid temporaries to two
-    ndimage.gaussian_filter(vals, sigma, mode="constant", cval=0.0, output=vals)
     den = m.astype(np.float64)
-    ndimage.gaussian_filter(den, sigma, mode="constant", cval=0.0, output=den)
+    for axis in range(m.ndim):
+        w = gaussian_kernel(float(sigma[axis]))
+        vals = convolve_axis(vals, w, axis)
+        den = convolve_axis(den, w, axis)
     np.divide(vals, den, out=vals, where=m & (den > 0))
     vals[~m] = 0.0
     return vals
@@ -732,8 +776,6 @@ def whiten_ar(Z: npt.NDArray[np.floating], phi: npt.ArrayLike, innovation_varian
     Prais-Winsten transform, ``u_1 = sqrt(1 - rho^2) z_1`` (Prais & Winsten
     (1954), Cowles Commission discussion paper 383).
     """
-    from scipy.linalg import cholesky, solve_triangular, toeplitz  # lazily, see smooth_within_mask
-
     Z = np.asarray(Z, dtype=np.float64)
     phi = np.asarray(phi, dtype=np.float64)
     q = phi.size
@@ -743,8 +785,9 @@ def whiten_ar(Z: npt.NDArray[np.floating], phi: npt.ArrayLike, innovation_varian
     for k in range(1, q + 1):
         out[q:] -= phi[k - 1] * Z[q - k:Z.shape[0] - k]
     head = np.asarray(acf_head, dtype=np.float64)[:q]
-    L = cholesky(toeplitz(head), lower=True)
-    out[:q] = math.sqrt(innovation_variance) * solve_triangular(L, Z[:q], lower=True)
+    lags = np.abs(np.subtract.outer(np.arange(q), np.arange(q)))
+    L = np.linalg.cholesky(head[lags])
+    out[:q] = math.sqrt(innovation_variance) * np.linalg.solve(L, Z[:q])
     return out
 
 

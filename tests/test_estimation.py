@@ -289,6 +289,25 @@ def test_smoothing_interior_equals_gaussian_filter() -> None:
     assert_allclose(out[10:20, 10:20, 10:20], ref[10:20, 10:20, 10:20], rtol=1e-9, atol=1e-12)
 
 
+@pytest.mark.parametrize("fwhm_mm, voxel_mm", [(5.0, (2.0, 2.0, 2.0)), (8.0, (1.5, 2.5, 3.5)), (0.5, (3.0, 3.0, 3.0))])
+def test_smoothing_within_a_mask_equals_normalised_gaussian_filter(fwhm_mm: float, voxel_mm: tuple) -> None:
+    from scipy.ndimage import gaussian_filter
+
+    rng = np.random.default_rng(11)
+    shape = (17, 13, 9)
+    grids = np.meshgrid(*[np.linspace(-1, 1, n) for n in shape], indexing="ij")
+    mask = sum(g ** 2 for g in grids) < 0.8
+    vals = rng.normal(size=shape)
+    out = est.smooth_within_mask(vals, mask, fwhm_mm, voxel_mm)
+    # reference: scipy.ndimage.gaussian_filter (zero outside the grid, truncated at 4 sigma), used for
+    # normalised convolution G*(m v) / G*m (Knutsson & Westin 1993)
+    sigma = fwhm_mm / np.sqrt(8 * np.log(2)) / np.asarray(voxel_mm)
+    num = gaussian_filter(np.where(mask, vals, 0.0), sigma, mode="constant")
+    den = gaussian_filter(mask.astype(float), sigma, mode="constant")
+    assert_allclose(out[mask], (num / den)[mask], rtol=1e-10, atol=1e-13)
+    assert np.all(out[~mask] == 0)
+
+
 def test_assign_bins() -> None:
     idx, centres = est.assign_bins(np.array([0.004, 0.006, -0.3149, 1.5, 0.3]), 0.01)
     assert_allclose(centres[idx], [0.0, 0.01, -0.31, 0.99, 0.3], atol=1e-12)
