@@ -24,7 +24,7 @@ import json
 import os
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 import numpy.typing as npt
@@ -298,7 +298,10 @@ class MaskedSeries:
     Attributes
     ----------
     Y : ndarray, shape (n_scans, n_voxels), float32
-        Kept volumes (from ``first_volume``), voxels of the mask in C order.
+        Kept volumes (from ``first_volume``), one column per voxel of the mask,
+        in the order of ``flat_index``.
+    flat_index : ndarray of int64, shape (n_voxels,)
+        Index of each column's voxel in the C-order flattened grid.
     mean : ndarray, shape (n_voxels,), float64
         Temporal mean over the kept volumes (NaN if a value is not finite).
     minimum, maximum : ndarray, shape (n_voxels,), float32
@@ -308,6 +311,7 @@ class MaskedSeries:
     """
 
     Y: npt.NDArray[np.float32]
+    flat_index: npt.NDArray[np.int64]
     mean: npt.NDArray[np.float64]
     minimum: npt.NDArray[np.float32]
     maximum: npt.NDArray[np.float32]
@@ -315,7 +319,7 @@ class MaskedSeries:
 
 
 def stream_masked(bold: BoldHeader, mask: npt.NDArray[np.bool_], first_volume: int = 0,
-                  threads: int = 1) -> MaskedSeries:
+                  threads: int = 1, voxel_order: Literal["C", "disk"] = "C") -> MaskedSeries:
     """Read the in-mask voxels of a BOLD run volume by volume.
 
     Parameters
@@ -327,6 +331,11 @@ def stream_masked(bold: BoldHeader, mask: npt.NDArray[np.bool_], first_volume: i
         Volumes before this one are read (and hashed) but not kept.
     threads : int
         Threads of the job; with 2 or more, isal decompresses in a reader thread.
+    voxel_order : {"C", "disk"}
+        Order of the columns: ``C`` (the grid flattened in C order, ``flat_index``
+        increasing) or ``disk`` (the order in which NIfTI stores the voxels, x
+        fastest). Gathering a volume in disk order reads it sequentially, about 3x
+        faster than in C order (``tests/benchmarks/README.md``).
 
     Returns
     -------
@@ -339,8 +348,14 @@ def stream_masked(bold: BoldHeader, mask: npt.NDArray[np.bool_], first_volume: i
     slope (NIfTI-1 standard, ``scl_slope``/``scl_inter``).
     """
     nx, ny, nz, nt = bold.shape
-    flat_c = np.flatnonzero(mask)
-    disk_pos = np.ravel_multi_index(np.unravel_index(flat_c, (nx, ny, nz)), (nx, ny, nz), order="F")
+    if voxel_order == "C":
+        flat_c = np.flatnonzero(mask)
+        disk_pos = np.ravel_multi_index(np.unravel_index(flat_c, (nx, ny, nz)), (nx, ny, nz), order="F")
+    elif voxel_order == "disk":
+        disk_pos = np.flatnonzero(np.asarray(mask).ravel(order="F"))
+        flat_c = np.ravel_multi_index(np.unravel_index(disk_pos, (nx, ny, nz), order="F"), (nx, ny, nz))
+    else:
+        raise ValueError(f"voxel_order must be 'C' or 'disk', not {voxel_order!r}")
     n_keep = nt - first_volume
     v = flat_c.size
     Y = np.empty((n_keep, v), dtype=np.float32)
@@ -387,4 +402,4 @@ def stream_masked(bold: BoldHeader, mask: npt.NDArray[np.bool_], first_volume: i
                 stream.close()
         raw.drain()
     mean = total / max(n_keep, 1)
-    return MaskedSeries(Y=Y, mean=mean, minimum=vmin, maximum=vmax, sha256=raw.digest.hexdigest())
+    return MaskedSeries(Y=Y, flat_index=flat_c, mean=mean, minimum=vmin, maximum=vmax, sha256=raw.digest.hexdigest())

@@ -93,6 +93,8 @@ def test_job_end_to_end(tmp_path: Path) -> None:
     assert side["voxel_counts"] == counts and side["n_bins"] == fit.bin_rho.size and side["dof"] == N_VOL - FIRST - 4
     assert side["autocorrelation"] == "ar1" and set(side["timing_s"]) >= {"read", "fit"}
     assert side["lineage_hash"] == fit.attrs["lineage_hash"]
+    # voxels are fitted in the order the file stores them but stored in C order of the grid
+    assert np.all(np.diff(fit.voxel_index) > 0)
     # the bold hash computed while streaming equals the one build_record would compute
     ref = provenance.build_record("fit", PARAMS, inputs, side["warnings"])
     assert side["inputs"] == ref["inputs"] and side["lineage_hash"] == ref["lineage_hash"]

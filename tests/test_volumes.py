@@ -66,6 +66,24 @@ def test_stream_equals_nibabel_float(tmp_path: Path, series: np.ndarray, name: s
     assert got.sha256 == provenance.hash_file(path)
 
 
+@pytest.mark.parametrize("name", ["f32.nii.gz", "f32.nii"])
+def test_disk_voxel_order_equals_nibabel(tmp_path: Path, series: np.ndarray, name: str) -> None:
+    path = tmp_path / name
+    write_bold(path, series)
+    mask = make_mask()
+    got = stream_masked(read_bold_header(path), mask, first_volume=1, voxel_order="disk")
+    ref = nib.load(path).get_fdata()  # reference: nibabel get_fdata
+    # NIfTI stores x fastest (NIfTI-1 standard): the disk order is the grid flattened in Fortran order
+    disk = np.flatnonzero(mask.ravel(order="F"))
+    assert np.array_equal(got.flat_index, np.ravel_multi_index(np.unravel_index(disk, SHAPE, order="F"), SHAPE))
+    expected = ref.reshape(-1, ref.shape[3], order="F")[disk][:, 1:].T
+    assert np.array_equal(got.Y, expected.astype(np.float32))
+    c_order = stream_masked(read_bold_header(path), mask, first_volume=1)
+    assert np.array_equal(c_order.flat_index, np.flatnonzero(mask))
+    back = np.argsort(got.flat_index)
+    assert np.array_equal(got.Y[:, back], c_order.Y) and np.array_equal(got.mean[back], c_order.mean)
+
+
 def test_stream_equals_nibabel_int16_with_scaling(tmp_path: Path) -> None:
     rng = np.random.default_rng(1)
     raw = rng.integers(-3000, 3000, size=SHAPE + (9,)).astype(np.int16)

@@ -217,7 +217,8 @@ def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], col
                factors: npt.NDArray[np.floating],
                design: est.DesignFactors, settings: FitSettings, order: int, chunk: int,
                fitted_mask: npt.NDArray[np.bool_] | None = None,
-               voxel_size_mm: npt.ArrayLike = (1.0, 1.0, 1.0)) -> VoxelFit:
+               voxel_size_mm: npt.ArrayLike = (1.0, 1.0, 1.0),
+               flat_index: npt.NDArray[np.integer] | None = None) -> VoxelFit:
     """Fit the voxels ``Y[:, columns]`` chunk by chunk.
 
     Parameters
@@ -237,9 +238,12 @@ def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], col
     chunk : int
         Voxels per chunk.
     fitted_mask : ndarray of bool, shape (nx, ny, nz), optional
-        Grid positions of the fitted voxels (C order matches ``columns``);
-        required when smoothing the AR estimates.
+        Grid positions of the fitted voxels; required when smoothing the AR
+        estimates.
     voxel_size_mm : array_like, shape (3,)
+    flat_index : ndarray of int, shape (v,), optional
+        C-order flat grid index of each fitted voxel, in the order of
+        ``columns``; by default the voxels of ``fitted_mask`` in C order.
 
     Returns
     -------
@@ -302,7 +306,7 @@ def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], col
     if settings.ar_smoothing_fwhm_mm > 0:
         if fitted_mask is None:
             raise ValueError("fitted_mask is required to smooth the AR estimates")
-        flat = np.flatnonzero(fitted_mask)
+        flat = np.flatnonzero(fitted_mask) if flat_index is None else np.asarray(flat_index)
         for k in range(acf.shape[0]):
             grid = np.zeros(fitted_mask.shape)
             grid.flat[flat] = acf[k]
@@ -434,7 +438,9 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
                                   GlmstepsWarning, stacklevel=2)
             # --- read -----------------------------------------------------------------------------
             t_read = time.perf_counter()
-            fit, extra = _fit_run(stream_masked(bold, mask, design_in.first_volume, threads=threads), mask, bold,
+            # passed on without a name here, so that fit_voxels can release the data after its first pass
+            fit, extra = _fit_run(stream_masked(bold, mask, design_in.first_volume, threads=threads,
+                                                voxel_order="disk"), mask, bold,
                                   design_in, design, settings, order, bold_path, time.perf_counter() - t_read)
     t_fit_end = time.perf_counter()
     lag1 = extra.pop("_qc_lag1", None)
@@ -462,7 +468,7 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: Des
              bold_path: str, read_s: float) -> tuple[StoredFit, dict[str, Any]]:
     logger.info("read %s: %d volumes x %d in-mask voxels in %.2f s", bold_path, series.Y.shape[0],
                 series.Y.shape[1], read_s)
-    flat_c = np.flatnonzero(mask)
+    flat_c = series.flat_index  # grid index of each column (columns in the order the file stores them)
     mean = series.mean
     finite = np.isfinite(series.minimum) & np.isfinite(series.maximum) & np.isfinite(mean)
     non_finite = ~finite
@@ -489,7 +495,9 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: Des
     fitted_mask.flat[voxel_index] = True
     t0 = time.perf_counter()
     vf = fit_voxels(data, columns, factors, design, settings, order, chunk_voxels(), fitted_mask,
-                    bold.voxel_size_mm)
+                    bold.voxel_size_mm, flat_index=voxel_index)
+    grid_order = np.argsort(voxel_index, kind="stable")  # the fit is stored in C order
+    vf, voxel_index = _reorder(vf, grid_order), voxel_index[grid_order]
     fit_s = time.perf_counter() - t0
     mean_image = np.full(mask.shape, np.nan, dtype=np.float32)
     mean_image.flat[flat_c] = mean.astype(np.float32)
@@ -507,6 +515,13 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: Des
              "timing_s_fit": round(fit_s, 3),
              "_qc_lag1": vf.lag1, "timing_s": {"read": round(read_s, 3)}, "sha256_bold": sha256}
     return fit, extra
+
+
+def _reorder(vf: VoxelFit, order: npt.NDArray[np.integer]) -> VoxelFit:
+    """``vf`` with its voxels taken in ``order``."""
+    return VoxelFit(beta=vf.beta[:, order], residual_variance=vf.residual_variance[order],
+                    ar_coef=vf.ar_coef[order], lag1=vf.lag1[order], bin=vf.bin[order], bin_rho=vf.bin_rho,
+                    bin_covariance=vf.bin_covariance, order=vf.order)
 
 
 def _excluded_fit(design_in: DesignInput, bold: Any, settings: FitSettings) -> tuple[StoredFit, dict[str, Any]]:
