@@ -22,6 +22,8 @@ import hashlib
 import io
 import json
 import os
+import queue
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal
@@ -249,25 +251,56 @@ def check_repetition_time(bold: BoldHeader, repetition_time_s: float) -> list[st
 
 
 class _HashingReader(io.RawIOBase):
-    """A raw binary reader that feeds every byte it returns to a sha256."""
+    """A raw binary reader that feeds every byte it returns to a sha256.
+
+    The hashing runs in a helper thread (``hashlib`` releases the GIL while it
+    hashes), so that it overlaps with decompression instead of adding to it;
+    :meth:`hexdigest` waits for it. Use as a context manager, so the thread
+    ends also when reading fails.
+    """
+
+    _QUEUE_BLOCKS = 8  # at most this many blocks (of the caller's read size) wait to be hashed
 
     def __init__(self, handle: Any) -> None:
         self._handle = handle
-        self.digest = hashlib.sha256()
+        self._digest = hashlib.sha256()
+        self._blocks: queue.Queue[bytes | None] = queue.Queue(maxsize=self._QUEUE_BLOCKS)
+        self._thread = threading.Thread(target=self._consume, name="glmsteps-sha256", daemon=True)
+        self._thread.start()
+
+    def _consume(self) -> None:
+        while (block := self._blocks.get()) is not None:
+            self._digest.update(block)
 
     def readable(self) -> bool:
         return True
 
     def readinto(self, buffer: Any) -> int:
-        n = self._handle.readinto(buffer)
+        block = self._handle.read(len(buffer))
+        n = len(block)
         if n:
-            self.digest.update(memoryview(buffer)[:n])
-        return n or 0
+            memoryview(buffer)[:n] = block
+            self._blocks.put(block)
+        return n
 
     def drain(self) -> None:
         """Read (and hash) whatever is left of the file."""
         for block in iter(lambda: self._handle.read(1 << 20), b""):
-            self.digest.update(block)
+            self._blocks.put(block)
+
+    def hexdigest(self) -> str:
+        """The sha256 of every byte read so far (waits for the hashing thread)."""
+        self._finish()
+        return self._digest.hexdigest()
+
+    def _finish(self) -> None:
+        if self._thread.is_alive():
+            self._blocks.put(None)
+            self._thread.join()
+
+    def __exit__(self, *exc: Any) -> None:
+        self._finish()
+        super().__exit__(*exc)
 
 
 def _open_decompressed(raw: io.BufferedReader, threads: int) -> Any:
@@ -367,8 +400,7 @@ def stream_masked(bold: BoldHeader, mask: npt.NDArray[np.bool_], first_volume: i
     scaled = bold.slope != 1.0 or bold.inter != 0.0
     buf = bytearray(vol_bytes)
     view = memoryview(buf)
-    with open(bold.path, "rb", buffering=0) as handle:
-        raw = _HashingReader(handle)
+    with open(bold.path, "rb", buffering=0) as handle, _HashingReader(handle) as raw:
         braw = io.BufferedReader(raw, buffer_size=1 << 20)
         stream = _open_decompressed(braw, threads) if bold.compressed else braw
         try:
@@ -401,5 +433,6 @@ def stream_masked(bold: BoldHeader, mask: npt.NDArray[np.bool_], first_volume: i
             if stream is not braw:
                 stream.close()
         raw.drain()
+        digest = raw.hexdigest()
     mean = total / max(n_keep, 1)
-    return MaskedSeries(Y=Y, flat_index=flat_c, mean=mean, minimum=vmin, maximum=vmax, sha256=raw.digest.hexdigest())
+    return MaskedSeries(Y=Y, flat_index=flat_c, mean=mean, minimum=vmin, maximum=vmax, sha256=digest)
