@@ -126,6 +126,7 @@ run_snakemake() {
 
 # write_config <dest> <data root> [subject...]: config/config.yaml with
 # inputs.root set; with subjects, only those are analysed, without group models
+# and without run-level maps (the subject maps come straight from the run fits)
 write_config() {
   "$python" - "$repo/config/config.yaml" "$@" <<'PY'
 import sys
@@ -139,6 +140,7 @@ config["inputs"]["root"] = root
 if sys.argv[4:]:
     config["inputs"]["subjects"] = sys.argv[4:]
     config["group_models"] = {}
+    config.setdefault("contrast_options", {})["run_maps"] = False
 with open(dest, "w", encoding="utf-8") as f:
     yaml.safe_dump(config, f, sort_keys=False)
 PY
@@ -224,14 +226,17 @@ if wants compare; then
 
   # -------------------------------------------------------------- 5. compare
   slurm_states "$work/slurm.log" "$work/slurm_states.txt"
-  "$python" - "$local_dir/results" "$work/slurm/results" "$work/slurm_states.txt" <<'PY'
-"""Local and SLURM results identical; every SLURM job COMPLETED. Exit 1 on any problem."""
+  "$python" - "$local_dir/results" "$work/slurm/results" "$work/slurm_states.txt" "$config" <<'PY'
+"""Local and SLURM results identical; every SLURM job COMPLETED; one cluster job per
+subject and per group model. Exit 1 on any problem."""
 import csv
 import hashlib
 import sys
 from pathlib import Path
 
-local, slurm, states_file = (Path(a) for a in sys.argv[1:4])
+import yaml
+
+local, slurm, states_file, config_file = (Path(a) for a in sys.argv[1:5])
 problems = []
 
 
@@ -287,6 +292,13 @@ if not rows:
 for job, in_squeue, in_sacct in rows:
     if in_sacct != "COMPLETED" or in_squeue not in ("-", "COMPLETED"):
         problems.append(f"SLURM job {job}: squeue {in_squeue}, sacct {in_sacct}; expected COMPLETED")
+# the profile's groups: one bundle per subject, one per group model, index on the submitting machine
+config = yaml.safe_load(config_file.read_text(encoding="utf-8"))
+n_subjects = len({p.name for p in local.glob("sub-*") if p.is_dir()})
+expected = n_subjects + len(config.get("group_models") or {})
+if len(rows) != expected:
+    problems.append(f"{len(rows)} SLURM jobs; expected {expected} ({n_subjects} subject bundles + "
+                    f"{expected - n_subjects} group-model bundles)")
 
 for p in problems:
     say(f"check failed: {p}")
