@@ -7,6 +7,11 @@
 #                              (label width: $LAP_WIDTH, default 22)
 #   stop_run_and_cluster       stop the snakemake in $smk_pid (if any) and the local
 #                              cluster (stop_local_slurm.sh, daemons by recorded pid)
+#   finish_on_exit NAME HEADER on exit (also after a failure or INT/TERM): stop the run
+#                              and the cluster, print the timings under "timings
+#                              (HEADER):", then say "NAME OK" and remove $work unless
+#                              $keep_work, when $passed is true and the status is 0,
+#                              else "NAME FAILED" (exit status non-zero)
 
 choose_python() {
   if [[ -n ${GS_PYTHON:-} ]]; then
@@ -46,4 +51,31 @@ stop_run_and_cluster() {
     kill -KILL "$smk_pid" 2>/dev/null
     wait "$smk_pid" 2>/dev/null  # reap it (status 137)
   fi
+}
+
+finish_on_exit() {
+  _finish_name=$1
+  _finish_header=$2
+  trap _finish EXIT
+  trap 'exit 130' INT TERM
+}
+
+_finish() {
+  local rc=$?
+  trap - EXIT INT TERM
+  set +e  # clean up as far as possible, whatever fails
+  t0=$(now)
+  stop_run_and_cluster
+  lap "stop cluster"
+  timings+=("$(printf "%-${LAP_WIDTH:-22}s %s s" total "$(seconds_since "$t_all")")")
+  say "timings ($_finish_header):"
+  printf '  %s\n' "${timings[@]}" >&2
+  if ${passed:-false} && ((rc == 0)); then
+    ${keep_work:-true} || rm -rf "$work"
+    say "$_finish_name OK"
+  else
+    say "$_finish_name FAILED (outputs and logs kept in $work)"
+    ((rc != 0)) || rc=1
+  fi
+  exit "$rc"
 }

@@ -51,27 +51,7 @@ t_all=$t0
 
 passed=false
 smk_pid=""
-finish() {
-  local rc=$?
-  trap - EXIT INT TERM
-  set +e  # clean up as far as possible, whatever fails
-  t0=$(now)
-  stop_run_and_cluster
-  lap "stop cluster"
-  timings+=("$(printf '%-22s %s s' total "$(seconds_since "$t_all")")")
-  say "timings (accounting: $GS_SLURM_ACCOUNTING):"
-  printf '  %s\n' "${timings[@]}" >&2
-  if $passed && ((rc == 0)); then
-    $keep_work || rm -rf "$work"
-    say "SMOKE OK"
-  else
-    say "SMOKE FAILED (outputs and logs kept in $work)"
-    ((rc != 0)) || rc=1
-  fi
-  exit "$rc"
-}
-trap finish EXIT
-trap 'exit 130' INT TERM
+finish_on_exit "SMOKE" "accounting: $GS_SLURM_ACCOUNTING"
 
 # ---------------------------------------------------------------- 1. cluster
 say "starting the cluster (accounting: $GS_SLURM_ACCOUNTING)"

@@ -89,27 +89,7 @@ t_all=$t0
 
 passed=false
 smk_pid=""
-finish() {
-  local rc=$?
-  trap - EXIT INT TERM
-  set +e  # clean up as far as possible, whatever fails
-  t0=$(now)
-  stop_run_and_cluster
-  lap "stop cluster"
-  timings+=("$(printf '%-34s %s s' total "$(seconds_since "$t_all")")")
-  say "timings (accounting: $GS_SLURM_ACCOUNTING, $cpus cpus, stages: $stages):"
-  printf '  %s\n' "${timings[@]}" >&2
-  if $passed && ((rc == 0)); then
-    $keep_work || rm -rf "$work"
-    say "TOY ON SLURM OK"
-  else
-    say "TOY ON SLURM FAILED (outputs and logs kept in $work)"
-    ((rc != 0)) || rc=1
-  fi
-  exit "$rc"
-}
-trap finish EXIT
-trap 'exit 130' INT TERM
+finish_on_exit "TOY ON SLURM" "accounting: $GS_SLURM_ACCOUNTING, $cpus cpus, stages: $stages"
 
 # run_snakemake <log> <args...>: snakemake in the background, waited for, so
 # that INT/TERM reach the trap at once; returns snakemake's exit status
