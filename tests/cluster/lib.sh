@@ -2,6 +2,9 @@
 # Source it after setting `here` (this folder); it defines:
 #   choose_python              sets $python: $GS_PYTHON, else the active venv's, else
 #                              /work/venv/bin/python, else python3
+#   require_imports MOD...     exit 1 with a one-line hint unless $python imports them
+#   use_work_dir DIR PREFIX    sets work (DIR, created and kept afterwards, if DIR is
+#                              set; else a new /tmp/PREFIX.XXXXXX) and keep_work
 #   now / seconds_since T / lap STAGE
 #                              stage timings collected in the array `timings`
 #                              (label width: $LAP_WIDTH, default 22)
@@ -23,6 +26,26 @@ choose_python() {
   else
     python=python3
   fi
+}
+
+require_imports() {
+  if ! "$python" -c "import $(IFS=,; echo "$*")" 2>/dev/null; then
+    say "FAILED: $python cannot import $*; set GS_PYTHON to a python that has them" \
+      "(pip install '.[slurm]')"
+    exit 1
+  fi
+}
+
+use_work_dir() {
+  if [[ -n $1 ]]; then
+    work=$1
+    mkdir -p "$work"
+    keep_work=true
+  else
+    work=$(mktemp -d "/tmp/$2.XXXXXX")
+    keep_work=false
+  fi
+  work=$(cd "$work" && pwd)
 }
 
 now() { date +%s.%N; }

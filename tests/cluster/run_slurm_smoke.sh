@@ -28,23 +28,12 @@ choose_python
 
 say() { printf '[slurm_smoke] %s\n' "$*" >&2; }
 
-if ! "$python" -c 'import snakemake, snakemake_executor_plugin_slurm' 2>/dev/null; then
-  say "FAILED: $python cannot import snakemake and snakemake_executor_plugin_slurm;" \
-    "set GS_PYTHON to a python that has both (pip install '.[slurm]')"
-  exit 1
-fi
+require_imports snakemake snakemake_executor_plugin_slurm
 
-if [[ -n ${GS_SMOKE_DIR:-} ]]; then
-  work=$GS_SMOKE_DIR
-  mkdir -p "$work"
-  # outputs of an earlier run would leave Snakemake nothing to submit, and
-  # the lock of an interrupted one would stop it
-  rm -rf "$work/sub-01" "$work/.snakemake"
-  keep_work=true
-else
-  work=$(mktemp -d /tmp/glmsteps-slurm-smoke.XXXXXX)
-  keep_work=false
-fi
+use_work_dir "${GS_SMOKE_DIR:-}" glmsteps-slurm-smoke
+# in a given folder, outputs of an earlier run would leave Snakemake nothing to
+# submit, and the lock of an interrupted one would stop it
+$keep_work && rm -rf "$work/sub-01" "$work/.snakemake"
 
 t0=$(now)
 t_all=$t0

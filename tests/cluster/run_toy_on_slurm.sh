@@ -63,21 +63,9 @@ wants compare || wants failure || {
   say "FAILED: GS_TOY_STAGES is '$stages'; expected 'compare', 'failure' or both"
   exit 1
 }
-if ! "$python" -c 'import snakemake, snakemake_executor_plugin_slurm, yaml' 2>/dev/null; then
-  say "FAILED: $python cannot import snakemake and snakemake_executor_plugin_slurm;" \
-    "set GS_PYTHON to a python that has both (pip install '.[slurm]')"
-  exit 1
-fi
+require_imports snakemake snakemake_executor_plugin_slurm yaml
 
-if [[ -n ${GS_TOY_DIR:-} ]]; then
-  work=$GS_TOY_DIR
-  mkdir -p "$work"
-  keep_work=true
-else
-  work=$(mktemp -d /tmp/glmsteps-toy-slurm.XXXXXX)
-  keep_work=false
-fi
-work=$(cd "$work" && pwd)
+use_work_dir "${GS_TOY_DIR:-}" glmsteps-toy-slurm
 
 # the local cluster's single node: its cpus (slurm.conf CPUs=$(nproc)) cap the
 # cpus one bundle of grouped jobs asks for; the local run uses as many cores
