@@ -11,6 +11,8 @@ rule fit:
         ar_coef=RUN_DIR + "/ar_coef.nii.gz",
     params:
         settings=fit_params(),
+    # not in params: the fit does not depend on it (rules/common.smk: fit_params)
+    threads: config["fit"]["threads"]
     resources:
         mem_mb=fit_mem_mb,
         runtime=30,

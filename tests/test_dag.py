@@ -43,6 +43,13 @@ def test_reordering_config_keys_plans_nothing(toy_results):
     assert _plan(toy_results, _reorder(copy.deepcopy(toy_results.config))) == []
 
 
+def test_fit_threads_rerun_nothing(toy_results):
+    # threads change how fast a fit runs, never its results (tests/test_jobs_fit.py), so no rerun
+    config = copy.deepcopy(toy_results.config)
+    config.setdefault("fit", {})["threads"] = 2
+    assert _plan(toy_results, config) == []
+
+
 def test_adding_a_contrast_runs_only_its_jobs(toy_results):
     config = copy.deepcopy(toy_results.config)
     config["contrasts"]["tap_minus_flash"] = {"weights": {"tap": 1, "flash": -1}}

@@ -150,11 +150,23 @@ def test_results_do_not_depend_on_chunk_size(tmp_path: Path, model: str) -> None
     mask = np.ones(grid, dtype=bool)
     settings = job.check_params({**PARAMS, "autocorrelation": model, "ar_order": 2})
     order = 2 if model == "arp" else 1
-    runs = [job.fit_voxels(Y, columns, factors, design, settings, order, size, mask, (3.0, 3.0, 3.0))
-            for size in (7, 1000, 990)]
-    for other in runs[:2]:
+    runs = [job.fit_voxels(Y, columns, factors, design, settings, order, size, mask, (3.0, 3.0, 3.0), threads=threads)
+            for size, threads in ((7, 1), (1000, 1), (7, 2), (64, 3), (990, 1))]
+    for other in runs[:-1]:
         for name in ("beta", "residual_variance", "ar_coef", "bin", "bin_rho", "bin_covariance", "lag1"):
             assert np.array_equal(getattr(other, name), getattr(runs[2], name)), name
+
+
+def test_job_threads_do_not_change_the_fit(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # several chunks, fitted by a pool of 2 threads with the BOLD read by a reader thread
+    monkeypatch.setenv("GLMSTEPS_CHUNK_VOXELS", "16")
+    inputs = make_run(tmp_path)
+    job.run(inputs, outputs_in(tmp_path / "a"), PARAMS, WILDCARDS, threads=1)
+    job.run(inputs, outputs_in(tmp_path / "b"), PARAMS, WILDCARDS, threads=2)
+    a, b = read_fit(tmp_path / "a" / "fit.h5"), read_fit(tmp_path / "b" / "fit.h5")
+    for name in ("beta", "residual_variance", "ar_coef", "bin", "bin_covariance", "voxel_index"):
+        assert np.array_equal(getattr(a, name), getattr(b, name)), name
+    assert a.attrs["lineage_hash"] == b.attrs["lineage_hash"]
 
 
 def test_chunk_size_from_environment(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:

@@ -46,6 +46,7 @@ N_VOL = 300
 TR_S = 2.0
 CASES = {"small": (64, 64, 40), "large": (97, 115, 97)}
 BLAS_THREADS = "1"
+JOB_THREADS = "1"
 
 
 # --------------------------------------------------------------------------- data generation
@@ -150,7 +151,7 @@ def child_fit(inputs_json: str, out: str) -> dict:
     params = {"scaling": "percent", "grand_mean_value": 100.0, "autocorrelation": "ar1", "ar_order": 1,
               "ar_smoothing_fwhm_mm": 5.0, "ar_bin_width": 0.01, "repetition_time_s": TR_S}
     t0 = time.perf_counter()
-    job.run(inputs, outputs, params, {"subject": "01", "run_id": "task-a_run-1"}, threads=1)
+    job.run(inputs, outputs, params, {"subject": "01", "run_id": "task-a_run-1"}, threads=int(JOB_THREADS))
     seconds = time.perf_counter() - t0
     side = json.loads((Path(out) / "fit.json").read_text())
     return {"seconds": seconds, "peak_mb": peak_mb(), "timing": side["timing_s"], "fitted": side["voxel_counts"]["fitted"],
@@ -206,7 +207,8 @@ def run_child(*args: str) -> dict:
     # One BLAS thread, as Snakemake gives a threads=1 job (it sets OPENBLAS_NUM_THREADS and friends
     # to the job's threads); with the default (all cores) BLAS threads fight over a shared machine.
     env = {**os.environ, "PYTHONPATH": str(ROOT), "OPENBLAS_NUM_THREADS": BLAS_THREADS, "OMP_NUM_THREADS": BLAS_THREADS}
-    proc = subprocess.run([sys.executable, str(HERE), "--child", *args], capture_output=True, text=True, env=env)
+    proc = subprocess.run([sys.executable, str(HERE), "--blas-threads", BLAS_THREADS, "--job-threads", JOB_THREADS,
+                           "--child", *args], capture_output=True, text=True, env=env)
     if proc.returncode:
         sys.stderr.write(proc.stderr)
         raise SystemExit(f"child {args[0]} failed")
@@ -220,13 +222,14 @@ def main() -> None:
     ap.add_argument("--small-only", action="store_true")
     ap.add_argument("--tmp", default=tempfile.gettempdir())
     ap.add_argument("--keep", action="store_true", help="keep the generated runs")
-    ap.add_argument("--sample", type=int, default=100, help="voxels in the statsmodels loop")
+    ap.add_argument("--sample", type=int, default=100, help="voxels in the statsmodels loop (0: skip it)")
     ap.add_argument("--repeat", type=int, default=3, help="repeats of the yardstick and of the job (medians used)")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     ap.add_argument("--blas-threads", default="1", help="OPENBLAS_NUM_THREADS of the measured tasks")
+    ap.add_argument("--job-threads", default="1", help="threads of the fit job (the rule's `threads`)")
     args = ap.parse_args()
-    global BLAS_THREADS
-    BLAS_THREADS = str(args.blas_threads)
+    global BLAS_THREADS, JOB_THREADS
+    BLAS_THREADS, JOB_THREADS = str(args.blas_threads), str(args.job_threads)
     if args.child:
         task, *rest = args.child
         fn = {"fdata": child_fdata, "fit": child_fit, "statsmodels": child_statsmodels,
@@ -260,7 +263,7 @@ def main() -> None:
                        "fit_mb": fit["peak_mb"], "data_mb": data_mb, "budget_mb": 1.2 * data_mb + 100,
                        "timing": fit["timing"], "n_bins": fit["n_bins"], "fdata_import_s": fdata["import_s"],
                        "fit_import_s": fit["import_s"], "pair_ratios": [round(r, 2) for r in ratios]}
-                if kind == "float32":
+                if kind == "float32" and args.sample > 0:
                     sm_res = run_child("statsmodels", json.dumps(inputs), str(args.sample))
                     row["statsmodels_s"] = sm_res["extrapolated_s"]
                 if case == "large" and kind == "float32":
@@ -272,7 +275,8 @@ def main() -> None:
         if not args.keep:
             shutil.rmtree(work, ignore_errors=True)
     print()
-    print(f"Medians of {args.repeat} interleaved repeats; 'each pair' lists the ratio of every repeat.")
+    print(f"Medians of {args.repeat} interleaved repeats; 'each pair' lists the ratio of every repeat. "
+          f"Fit job threads {JOB_THREADS}, BLAS threads {BLAS_THREADS}.")
     print()
     print("| run | .gz MB | get_fdata s (peak MB) | fit job s (peak MB) | time ratio (target <= 0.5); each pair "
           "| memory: peak / (1.2 x data + 100 MB) (target <= 1) | statsmodels GLS loop, extrapolated s (ratio) "
