@@ -911,10 +911,19 @@ def _settle_spikes(design: DesignFactors, y_censored: FloatArray, beta: FloatArr
 
 
 def _apply_bin_matrices(matrices: FloatArray, bin_index: npt.NDArray[np.integer], Z: FloatArray) -> FloatArray:
-    """``out[:, v] = matrices[bin_index[v]] @ Z[:, v]`` with element-wise arithmetic (chunk independent)."""
-    out = np.zeros((matrices.shape[1], Z.shape[1]))
-    for j in range(matrices.shape[2]):
-        out += matrices[bin_index, :, j].T * Z[j]
+    """``out[:, v] = matrices[bin_index[v]] @ Z[:, v]`` with element-wise arithmetic (chunk independent).
+
+    Bin by bin, so that each bin's matrix is broadcast instead of gathered for every voxel
+    (the same products and sums, in the same order, as a per-voxel matrix-vector product).
+    """
+    out = np.empty((matrices.shape[1], Z.shape[1]))
+    for b in np.unique(bin_index):
+        cols = np.flatnonzero(bin_index == b)
+        Zb = Z[:, cols]
+        acc = np.zeros((matrices.shape[1], cols.size))
+        for j in range(matrices.shape[2]):
+            acc += matrices[b, :, j, None] * Zb[j]
+        out[:, cols] = acc
     return out
 
 

@@ -170,10 +170,13 @@ def test_job_threads_do_not_change_the_fit(tmp_path: Path, monkeypatch: pytest.M
 
 
 def test_chunk_size_from_environment(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("GLMSTEPS_CHUNK_VOXELS", raising=False)
+    # the default is shared by the job's threads, at least 1024 voxels each
+    assert [job.chunk_voxels(t) for t in (1, 2, 3, 8)] == [4096, 2048, 1365, 1024]
     inputs = make_run(tmp_path)
     job.run(inputs, outputs_in(tmp_path / "a"), PARAMS, WILDCARDS)
     monkeypatch.setenv("GLMSTEPS_CHUNK_VOXELS", "7")
-    assert job.chunk_voxels() == 7
+    assert job.chunk_voxels() == job.chunk_voxels(threads=2) == 7
     job.run(inputs, outputs_in(tmp_path / "b"), PARAMS, WILDCARDS)
     a, b = read_fit(tmp_path / "a" / "fit.h5"), read_fit(tmp_path / "b" / "fit.h5")
     assert np.array_equal(a.beta, b.beta) and np.array_equal(a.residual_variance, b.residual_variance)

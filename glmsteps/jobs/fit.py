@@ -103,14 +103,17 @@ def check_params(params: Mapping[str, Any]) -> FitSettings:
                        repetition_time_s=tr)
 
 
-def chunk_voxels() -> int:
-    """Voxels per chunk: ``GLMSTEPS_CHUNK_VOXELS`` if set to a positive integer, else 4096."""
+def chunk_voxels(threads: int = 1) -> int:
+    """Voxels per chunk: ``GLMSTEPS_CHUNK_VOXELS`` if set to a positive integer, else
+    4096 shared by the job's threads (at least 1024 each), so that the chunks in
+    flight need about the same work memory whatever the threads."""
+    default = max(DEFAULT_CHUNK_VOXELS // max(threads, 1), 1024)
     text = os.environ.get("GLMSTEPS_CHUNK_VOXELS", "")
     try:
         value = int(text)
     except ValueError:
-        return DEFAULT_CHUNK_VOXELS
-    return value if value > 0 else DEFAULT_CHUNK_VOXELS
+        return default
+    return value if value > 0 else default
 
 
 # ---------------------------------------------------------------------------
@@ -531,7 +534,7 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: Des
     fitted_mask = np.zeros(mask.shape, dtype=bool)
     fitted_mask.flat[voxel_index] = True
     t0 = time.perf_counter()
-    vf = fit_voxels(data, columns, factors, design, settings, order, chunk_voxels(), fitted_mask,
+    vf = fit_voxels(data, columns, factors, design, settings, order, chunk_voxels(threads), fitted_mask,
                     bold.voxel_size_mm, flat_index=voxel_index, threads=threads)
     grid_order = np.argsort(voxel_index, kind="stable")  # the fit is stored in C order
     vf, voxel_index = _reorder(vf, grid_order), voxel_index[grid_order]
