@@ -10,22 +10,38 @@ import os
 import re
 import sys
 
+from snakemake.exceptions import WorkflowError
 from snakemake.utils import validate
 
 from glmsteps.bids import RunKey, check_pattern, discover_runs, parse_run_id
 from glmsteps.errors import ConfigError
-
-validate(config, workflow.source_path("../config/schema.yaml"), set_default=True)
-
-OUT = config["output_dir"].rstrip("/")
-_INPUTS = config["inputs"]
-_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_]*$")
 
 
 def _config_error(message):
     """Stop the workflow with a one-line configuration error (no traceback)."""
     sys.stderr.write(f"glmsteps: ConfigError: {message}\n")
     raise SystemExit(1)
+
+
+def _schema_error_line(exc):
+    """Which key of the config breaks config/schema.yaml and how, in one line."""
+    # Snakemake raises its WorkflowError while handling jsonschema's ValidationError
+    for cause in (exc.__cause__, exc.__context__):
+        path = getattr(cause, "absolute_path", None)
+        if path is not None and hasattr(cause, "message"):
+            key = ".".join(str(part) for part in path) or "(top level)"
+            return f"config {key}: {cause.message}; config/schema.yaml lists every key with its bounds"
+    return f"the config does not match config/schema.yaml ({str(exc).splitlines()[0]})"
+
+
+try:
+    validate(config, workflow.source_path("../config/schema.yaml"), set_default=True)
+except WorkflowError as _exc:
+    _config_error(_schema_error_line(_exc))
+
+OUT = config["output_dir"].rstrip("/")
+_INPUTS = config["inputs"]
+_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_]*$")
 
 
 def _check_names(kind, names):

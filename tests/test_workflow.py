@@ -133,6 +133,16 @@ def test_unknown_condition_in_a_contrast_is_a_one_line_error(one_run):
     assert not (one_run.workdir / target).exists()
 
 
+def test_config_outside_the_schema_is_a_one_line_error(one_run):
+    one_run.config["fit"]["threads"] = 0
+    one_run.write_config()
+    proc = one_run.snakemake("--cores", "1", "--dry-run", check=False)
+    assert proc.returncode != 0
+    line = _one_error_line(proc)
+    assert "fit.threads" in line and "minimum" in line
+    assert "Failed validating" not in proc.stderr + proc.stdout  # no schema dump after the line
+
+
 def test_3d_bold_is_a_one_line_error(one_run):
     bold_path = next((one_run.data / "sub-01" / "func").glob("*_bold.nii.gz"))
     img = nib.load(bold_path)
