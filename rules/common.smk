@@ -15,6 +15,7 @@ from snakemake.utils import validate
 
 from glmsteps.bids import RunKey, check_pattern, discover_runs, parse_run_id
 from glmsteps.errors import ConfigError
+from glmsteps.renames import check_renamed
 
 
 def _config_error(message):
@@ -33,6 +34,12 @@ def _schema_error_line(exc):
             return f"config {key}: {cause.message}; config/schema.yaml lists every key with its bounds"
     return f"the config does not match config/schema.yaml ({str(exc).splitlines()[0]})"
 
+
+try:
+    # renamed keywords and old design column names first: the schema would only say "not one of"
+    check_renamed(config)
+except ConfigError as _exc:
+    _config_error(str(_exc))
 
 try:
     validate(config, workflow.source_path("../config/schema.yaml"), set_default=True)

@@ -161,4 +161,4 @@ def test_fir_and_legendre_job(tmp_path: Path) -> None:
                                             drift_basis="legendre", legendre_order=2), {})
     summary = json.loads(Path(outputs["summary"]).read_text())
     assert summary["names"][:4] == ["faces__fir00", "faces__fir01", "faces__fir02", "faces__fir03"]
-    assert summary["names"][-3:] == ["drift_01", "drift_02", "intercept"]
+    assert summary["names"][-3:] == ["slow_01", "slow_02", "intercept"]
