@@ -16,6 +16,7 @@ from snakemake.utils import validate
 from glmsteps.bids import RunKey, check_pattern, discover_runs, parse_run_id
 from glmsteps.errors import ConfigError
 from glmsteps.renames import check_renamed
+from glmsteps.volumes import bids_sidecar_of
 
 
 def _config_error(message):
@@ -142,6 +143,15 @@ def confounds_file(wildcards):
     return _raw("confounds", wildcards)
 
 
+def bold_sidecar_file(wildcards):
+    """The BOLD's BIDS JSON sidecar (RepetitionTime, SliceTiming) when the run has one, else nothing.
+
+    An input of validate_events, so that editing it reruns the run's chain.
+    """
+    side = bids_sidecar_of(bold_file(wildcards))
+    return [str(side)] if side.exists() else []
+
+
 def mask_file(wildcards):
     """Mask NIfTI of a run."""
     return _raw("mask", wildcards)
@@ -210,9 +220,11 @@ def _canonical_params(helper):
 
 @_canonical_params
 def events_params():
-    """validate_events: the condition column, modulator columns and TR."""
-    modulators = sorted({c for cols in config["events"]["modulators"].values() for c in cols})
-    return {"condition_column": config["events"]["condition_column"], "modulators": modulators,
+    """validate_events: the condition column, modulators, the two row policies and the TR rule's setting."""
+    e = config["events"]
+    return {"condition_column": e["condition_column"],
+            "modulators": {k: list(v) for k, v in e["modulators"].items()},
+            "duplicate_events": e["duplicate_events"], "missing_duration": e["missing_duration"],
             "repetition_time_s": config["acquisition"]["repetition_time_s"]}
 
 
@@ -225,12 +237,11 @@ def confounds_params():
 
 @_canonical_params
 def design_params():
-    """build_design: HRF, drift, timing and condition settings."""
+    """build_design: HRF, drift, timing and condition settings (the TR is each run's own, from events.json)."""
     d = config["design"]
     return {"hrf": d["hrf"], "fir_bins": d["fir_bins"], "fir_bin_width_s": d["fir_bin_width_s"],
             "time_resolution_s": d["time_resolution_s"], "drift_basis": d["drift"]["basis"],
             "cutoff_s": d["drift"]["cutoff_s"], "legendre_order": d["drift"]["legendre_order"],
-            "repetition_time_s": config["acquisition"]["repetition_time_s"],
             "volume_time_fraction": config["acquisition"]["volume_time_fraction"],
             "conditions": list(config["events"]["conditions"]),
             "modulators": {k: list(v) for k, v in config["events"]["modulators"].items()}}
