@@ -22,12 +22,8 @@ import numpy.typing as npt
 import pandas as pd
 
 from .errors import ConfigError, ConfoundsError, GlmstepsWarning
+from .names import DIFF_SUFFIX, SPIKE_PREFIX, SQUARE_SUFFIX
 
-#: Suffixes of the expanded columns.
-DIFF_SUFFIX = "_diff"
-SQUARE_SUFFIX = "_sq"
-#: Prefix of the one-hot censoring regressors.
-SPIKE_PREFIX = "spike_"
 #: Units of motion columns, read from the end of the column name (``move_x_mm``, ``turn_x_rad``).
 MOTION_UNITS: dict[str, str] = {"_mm": "mm", "_rad": "rad", "_deg": "deg"}
 

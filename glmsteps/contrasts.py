@@ -39,12 +39,12 @@ import numpy.typing as npt
 
 from . import stats
 from .errors import ContrastError
+from .names import ALL_SUFFIX, FIR_PREFIX, LATENCY_BASIS, WIDTH_BASIS
 from .renames import renamed_column
 
-ALL_SUFFIX = "__all"
 Kind = Literal["t", "F"]
-#: Basis labels of a condition's response columns (besides the ``fir<k>`` bins); see glmsteps.hrf.
-_BASIS_COLUMNS = ("main", "latency", "width")
+#: Basis labels of a condition's response columns (besides the ``fir<k>`` bins); see glmsteps.names.
+_BASIS_COLUMNS = ("main", LATENCY_BASIS, WIDTH_BASIS)
 
 
 @dataclass(frozen=True)
@@ -129,7 +129,7 @@ def parse_spec(name: str, spec: Mapping[str, Any], tail: str | None = None) -> C
 def _condition_columns(cond: str, conditions: Sequence[str], basis: Sequence[str]) -> list[int]:
     """Indices of a condition's basis columns (main/latency/width/fir), in design order."""
     return [j for j, (c, b) in enumerate(zip(conditions, basis))
-            if c == cond and (b in _BASIS_COLUMNS or str(b).startswith("fir"))]
+            if c == cond and (b in _BASIS_COLUMNS or str(b).startswith(FIR_PREFIX))]
 
 
 def _resolve_key(spec: ContrastSpec, key: str, names: Sequence[str], conditions: Sequence[str],
@@ -139,7 +139,7 @@ def _resolve_key(spec: ContrastSpec, key: str, names: Sequence[str], conditions:
         main = [j for j, (c, b) in enumerate(zip(conditions, basis)) if c == key and b == "main"]
         if main:
             return [(main[0], 1.0)]
-        fir = [j for j, (c, b) in enumerate(zip(conditions, basis)) if c == key and str(b).startswith("fir")]
+        fir = [j for j, (c, b) in enumerate(zip(conditions, basis)) if c == key and str(b).startswith(FIR_PREFIX)]
         if fir:
             return [(j, 1.0 / len(fir)) for j in fir]
     if key in names:

@@ -28,14 +28,14 @@ from scipy.signal import fftconvolve
 
 from .errors import DesignError, GlmstepsWarning
 from .hrf import HRF_MODELS, ResponseModel, hrf_basis
+from .names import BASIS_SEPARATOR, INTERCEPT, MODULATOR_INFIX, SLOW_PREFIX, SPIKE_PREFIX
 
 DriftModel = Literal["cosine", "legendre", "none"]
 DRIFT_MODELS: tuple[str, ...] = ("cosine", "legendre", "none")
 #: Largest allowed step of the oversampled stimulus grid (seconds).
 MAX_DT_S: float = 0.1
 ROLES: tuple[str, ...] = ("interest", "modulator", "drift", "confound", "spike", "intercept")
-#: Prefix of the slow-signal (drift) columns: ``slow_01``, ``slow_02``, ...
-SLOW_PREFIX = "slow_"
+
 
 
 @dataclass(frozen=True)
@@ -419,7 +419,7 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
             reg = np.zeros((n, kernels.shape[1]))
         for j, label in enumerate(labels):
             cols.append(reg[:, j])
-            names.append(c if label == "main" else f"{c}__{label}")
+            names.append(c if label == "main" else f"{c}{BASIS_SEPARATOR}{label}")
             roles.append("interest")
             conds.append(c)
             basis.append(label)
@@ -442,7 +442,7 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
             else:
                 mreg = np.zeros(n)
             cols.append(mreg)
-            names.append(f"{c}__x_{m}")
+            names.append(f"{c}{MODULATOR_INFIX}{m}")
             roles.append("modulator")
             conds.append(c)
             basis.append("modulator")
@@ -457,7 +457,7 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
             if bad.size:
                 raise DesignError(f"confounds column {name!r} row {bad[0]}: found {confounds[name].iloc[bad[0]]!r}, "
                                   "expected a finite number; fill missing confound values upstream")
-            is_spike = str(name).startswith("spike_")
+            is_spike = str(name).startswith(SPIKE_PREFIX)
             if is_spike and not np.any(values != 0):
                 warnings.warn(f"spike column {name!r} is zero on every modelled volume (its volume was dropped); "
                               "it is left out of the design", GlmstepsWarning, stacklevel=2)
@@ -482,12 +482,12 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
         basis.append("")
     seen: set[str] = set()
     for name in names:
-        if name in seen or name == "intercept":
+        if name in seen or name == INTERCEPT:
             raise DesignError(f"design column name {name!r} occurs twice (a condition, modulator or confound "
                               "shares a name); rename the condition or the confound column")
         seen.add(name)
     cols.append(np.ones(n))
-    names.append("intercept")
+    names.append(INTERCEPT)
     roles.append("intercept")
     conds.append("")
     basis.append("")

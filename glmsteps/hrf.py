@@ -35,15 +35,13 @@ import numpy.typing as npt
 from scipy.special import gammaln
 
 from .errors import ConfigError
+from .names import FIR_PREFIX, LATENCY_BASIS, WIDTH_BASIS
 
 ResponseModel = Literal["double_gamma", "double_gamma_latency", "double_gamma_latency_width", "glover_1999", "fir"]
 
 #: The accepted ``model`` names of :func:`hrf_basis` (``design.hrf`` in the config).
 HRF_MODELS: tuple[str, ...] = ("double_gamma", "double_gamma_latency", "double_gamma_latency_width", "glover_1999",
                                "fir")
-#: Basis labels of the gamma models' extra columns: a latency shift and a width change.
-LATENCY_BASIS = "latency"
-WIDTH_BASIS = "width"
 
 #: Default length of the sampled kernel window (seconds).
 KERNEL_LENGTH_S: float = 32.0
@@ -282,7 +280,7 @@ def hrf_basis(model: ResponseModel, dt_s: float, *, fir_bins: int = 0, fir_bin_w
         raise ConfigError(f"unknown response model {model!r}; set design.hrf to one of {', '.join(HRF_MODELS)}")
     if model == "fir":
         kernels = fir_kernels(dt_s, fir_bins, fir_bin_width_s)
-        return kernels, [f"fir{k:02d}" for k in range(kernels.shape[1])]
+        return kernels, [f"{FIR_PREFIX}{k:02d}" for k in range(kernels.shape[1])]
     t = kernel_time_grid(dt_s, length_s)
     if model == "glover_1999":
         h = glover_response(t)

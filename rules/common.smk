@@ -14,7 +14,8 @@ from snakemake.exceptions import WorkflowError
 from snakemake.utils import validate
 
 from glmsteps.bids import RunKey, check_pattern, discover_runs, parse_run_id
-from glmsteps.errors import ConfigError
+from glmsteps.errors import ConfigError, GlmstepsError
+from glmsteps.precheck import check_config_contrasts
 from glmsteps.renames import check_renamed
 from glmsteps.volumes import bids_sidecar_of
 
@@ -96,6 +97,21 @@ for _model, _spec in GROUP_MODELS.items():
         if _c not in T_CONTRASTS:
             _config_error(f"group_models.{_model}.contrasts: {_c!r} is not a t contrast of the contrasts section "
                           f"(t contrasts: {', '.join(T_CONTRASTS) or 'none'})")
+
+
+def events_files_of_runs():
+    """The raw events TSV of every discovered run (paths only)."""
+    return [os.path.join(_INPUTS["root"], r.fill(_INPUTS["events"])) for r in RUNS]
+
+
+if workflow.is_main_process:
+    # contrast keys against the conditions of the events files, before any job (reads only the condition
+    # column of each events TSV; cluster jobs re-parsing this file skip it)
+    try:
+        check_config_contrasts(config, events_files_of_runs())
+    except GlmstepsError as _exc:
+        sys.stderr.write(f"glmsteps: {type(_exc).__name__}: {_exc}\n")
+        raise SystemExit(1)
 
 
 def _alternation(names):

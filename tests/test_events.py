@@ -1,4 +1,4 @@
-"""Tests of glmsteps.events: events-table validation and the per-contrast condition check.
+"""Tests of glmsteps.events: events-table validation.
 
 Fixtures are small TSV files written to tmp_path and read with the project's
 BIDS reader, so that ``n/a`` handling and row numbering are exercised exactly
@@ -15,8 +15,7 @@ import pandas as pd
 import pytest
 
 from glmsteps.errors import ConfigError, EventsError, GlmstepsWarning
-from glmsteps.events import (check_conditions_present, clip_durations, find_duplicate_events, find_overlaps,
-                             validate_events)
+from glmsteps.events import clip_durations, find_duplicate_events, find_overlaps, validate_events
 from glmsteps.fileio import read_tsv
 
 TR_S = 2.0
@@ -242,24 +241,6 @@ def test_clip_durations_formula():
     duration, clipped = clip_durations([0.0, 8.0, 9.0], [2.0, 2.0, 5.0], 10.0)
     np.testing.assert_allclose(duration, [2.0, 2.0, 1.0])
     np.testing.assert_array_equal(clipped, [False, False, True])
-
-
-# --------------------------------------------------------------------------- conditions per contrast
-
-def test_check_conditions_present_lists_runs_lacking_a_condition():
-    by_run = {"run-1": {"go", "stop"}, "run-2": {"go"}, "run-3": {"go", "stop", "rest"}}
-    needed = {"go_minus_stop": {"go", "stop"}, "go": {"go"}}
-    result = check_conditions_present(by_run, needed)
-    assert result == {"go_minus_stop": {"run-2": ["stop"]}, "go": {}}
-
-
-def test_check_conditions_present_errors_when_no_run_has_it():
-    by_run = {"run-1": {"go"}, "run-2": {"go", "stop"}}
-    with pytest.raises(EventsError) as info:
-        check_conditions_present(by_run, {"switch_cost": {"go", "switch"}})
-    message = str(info.value)
-    assert "\n" not in message
-    assert "'switch_cost'" in message and "'switch'" in message and "['go', 'stop']" in message
 
 
 # --------------------------------------------------------------------------- modulators of some conditions (issue 14)

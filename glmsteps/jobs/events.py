@@ -25,7 +25,7 @@ import pandas as pd
 from ..errors import ConfigError, EventsError
 from ..events import validate_events
 from ..fileio import read_user_tsv, write_json, write_tsv
-from ..provenance import build_record, collect_warnings, sidecar_path, write_sidecar
+from ..provenance import build_record, collect_warnings, display_path, sidecar_path, write_sidecar
 from ..volumes import bids_sidecar_of, read_bold_header, read_run_timing
 
 STEP = "validate_events"
@@ -100,8 +100,11 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     read = {"events": events_path, "bold": bold_path, **({"bold_sidecar": side} if side else {})}
     record = build_record(STEP, params, read, seen)
     summary_path = Path(outputs["summary"])
+    acquisition = timing.as_record()
+    if acquisition["source_file"]:
+        acquisition["source_file"] = display_path(acquisition["source_file"])  # as paths are in the record
     write_json(summary_path, {**summary, "n_volumes": bold.shape[3], "repetition_time_s": timing.repetition_time_s,
-                              "acquisition": timing.as_record(), "warnings": list(seen), "provenance": record})
+                              "acquisition": acquisition, "warnings": list(seen), "provenance": record})
     if sidecar_path(outputs["events"]).resolve() != summary_path.resolve():
         write_sidecar(outputs["events"], record)
     write_tsv(outputs["events"], clean)
