@@ -8,14 +8,18 @@ one rule (``acquisition.repetition_time_s`` in the config):
    beside it) has ``RepetitionTime`` (seconds), else when the NIfTI header has
    a positive ``pixdim[4]`` with a time unit (s, ms or us in ``xyzt_units``).
    The sidecar wins over the header (BIDS keeps acquisition metadata in the
-   sidecar); when both state a TR and they differ by more than 1 %, the
-   sidecar's value is used and a warning names both files.
+   sidecar); when both give a TR and they differ by more than 1 %, the
+   sidecar's value is used and a warning names both files. A header without
+   a time unit states no TR (converters often leave ``pixdim[4] = 1`` there);
+   its ``pixdim[4]``, read as seconds, is still checked against a configured
+   TR (rule 3).
 2. ``acquisition.repetition_time_s: null`` (the default): the run's TR is the
    one its files state; a run whose files state none is an error.
 3. ``acquisition.repetition_time_s: <number>``: the TR every run is expected
-   to have. A run whose files state a TR more than 1 % away from it is an
-   error naming the file; a run whose files state none uses the number.
-   Within 1 %, the files' value is used (the number is a check).
+   to have. A run whose files state a TR more than 1 % away from it (or, with
+   no sidecar TR, whose unit-less header does) is an error naming the file; a
+   run whose files state none uses the number. Within 1 %, the files' stated
+   value is used (the number is a check).
 
 ``SliceTiming`` (BIDS sidecar, seconds from the start of each volume) is read
 and checked (finite, within [0, TR)) and recorded with the TR; the design's
@@ -141,6 +145,7 @@ def check_slice_timing(slice_timing_s: Sequence[Any] | None, repetition_time_s: 
 
 def choose_repetition_time(*, bold_path: str, sidecar_path: str | None, sidecar_tr_s: float | None,
                            header_tr_s: float | None, configured_tr_s: float | None,
+                           header_unit_known: bool = True,
                            slice_timing_s: Sequence[Any] | None = None) -> RunTiming:
     """Apply the TR rule (module docstring) to what a run's files state.
 
@@ -153,9 +158,12 @@ def choose_repetition_time(*, bold_path: str, sidecar_path: str | None, sidecar_
     sidecar_tr_s : float or None
         The sidecar's ``RepetitionTime`` (seconds), None when absent.
     header_tr_s : float or None
-        The header's ``pixdim[4]`` in seconds, None when it states no TR.
+        The header's ``pixdim[4]`` in seconds (read as seconds when the header
+        gives no unit), None when it is not positive.
     configured_tr_s : float or None
         ``acquisition.repetition_time_s`` (None: per run from the files).
+    header_unit_known : bool
+        The header gives a time unit; without one its TR is only checked.
     slice_timing_s : sequence of float, optional
         The sidecar's ``SliceTiming``.
 
@@ -185,15 +193,20 @@ def choose_repetition_time(*, bold_path: str, sidecar_path: str | None, sidecar_
             warnings.warn(f"{bold_path}: header TR (pixdim[4]) {header_tr_s:g} s differs from RepetitionTime "
                           f"{sidecar_tr_s:g} s of its BIDS sidecar {side} by more than 1 %; the sidecar's value is "
                           "used", GlmstepsWarning, stacklevel=2)
-    elif header_tr_s is not None:
+    elif header_tr_s is not None and header_unit_known:
         stated = (float(header_tr_s), "header", bold_path)
+    elif header_tr_s is not None and configured is not None and _differs(header_tr_s, configured):
+        raise DataError(f"{bold_path}: header TR (pixdim[4]) {header_tr_s:g} s differs from the configured "
+                        f"repetition_time_s {configured:g} s (acquisition.repetition_time_s) by more than 1 % (the "
+                        "header gives no time unit; read as seconds); add the right RepetitionTime to its BIDS "
+                        "sidecar, or correct acquisition.repetition_time_s")
 
     if stated is None:
         if configured is None:
             where = f"its BIDS sidecar {side} has no RepetitionTime" if side else "it has no BIDS sidecar (.json)"
-            raise DataError(f"{bold_path}: no repetition time: {where} and the NIfTI header states none (pixdim[4] "
-                            "with a time unit); add RepetitionTime (seconds) to the sidecar or set "
-                            "acquisition.repetition_time_s")
+            header = ("has pixdim[4] but no time unit" if header_tr_s is not None else "states none")
+            raise DataError(f"{bold_path}: no repetition time: {where} and the NIfTI header {header}; add "
+                            "RepetitionTime (seconds) to the BIDS sidecar or set acquisition.repetition_time_s")
         tr, source, source_file = configured, "config", ""
     else:
         tr, source, source_file = stated

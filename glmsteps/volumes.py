@@ -73,9 +73,14 @@ class BoldHeader:
     slope, inter : float
         Scaling ``value = slope * stored + inter`` (1 and 0 when unset).
     repetition_time_s : float or None
-        ``pixdim[4]`` converted to seconds (:func:`header_repetition_time_s`),
-        ``None`` when the header states no TR.
+        ``pixdim[4]`` converted to seconds by its time unit, taken as seconds
+        when the header gives no unit (:func:`header_repetition_time_s`);
+        ``None`` when it is not positive.
     compressed : bool
+    time_unit_known : bool
+        The header gives a time unit (s, ms, us); without one its TR is only
+        checked against a configured TR, never relied on alone
+        (:mod:`glmsteps.acquisition`).
     """
 
     path: str
@@ -87,6 +92,7 @@ class BoldHeader:
     inter: float
     repetition_time_s: float | None
     compressed: bool
+    time_unit_known: bool = True
 
     @property
     def voxel_size_mm(self) -> npt.NDArray[np.float64]:
@@ -142,11 +148,20 @@ def read_bold_header(path: str | os.PathLike[str]) -> BoldHeader:
     inter = 0.0 if not np.isfinite(inter) else inter
     return BoldHeader(path=os.fspath(path), shape=shape, affine=np.asarray(img.affine, dtype=np.float64),
                       dtype=np.dtype(proxy.dtype), vox_offset=int(proxy.offset), slope=slope, inter=inter,
-                      repetition_time_s=header_repetition_time_s(hdr), compressed=os.fspath(path).endswith(".gz"))
+                      repetition_time_s=header_repetition_time_s(hdr), compressed=os.fspath(path).endswith(".gz"),
+                      time_unit_known=header_time_unit_known(hdr))
 
 
 #: Seconds per NIfTI time unit (``xyzt_units`` as nibabel names it).
 _TIME_UNITS_S: dict[str, float] = {"sec": 1.0, "msec": 1e-3, "usec": 1e-6}
+
+
+def header_time_unit_known(header: Any) -> bool:
+    """True when a NIfTI header gives the time unit of ``pixdim[4]`` (seconds, milliseconds, microseconds)."""
+    try:
+        return header.get_xyzt_units()[1] in _TIME_UNITS_S
+    except (AttributeError, IndexError, TypeError, ValueError):
+        return False
 
 
 def header_repetition_time_s(header: Any) -> float | None:
@@ -159,10 +174,11 @@ def header_repetition_time_s(header: Any) -> float | None:
     Returns
     -------
     float or None
-        None when there is no 4th dimension, ``pixdim[4]`` is not positive
-        and finite, or the time unit is not seconds, milliseconds or
-        microseconds (``unknown`` included: nibabel and many converters leave
-        ``pixdim[4] = 1`` with no unit, which says nothing about the TR).
+        None when there is no 4th dimension or ``pixdim[4]`` is not positive
+        and finite. Without a time unit (``unknown``) the value is taken as
+        seconds; :func:`header_time_unit_known` tells such headers apart
+        (nibabel and many converters leave ``pixdim[4] = 1`` with no unit,
+        which says nothing about the TR).
 
     Notes
     -----
@@ -175,9 +191,9 @@ def header_repetition_time_s(header: Any) -> float | None:
         unit = header.get_xyzt_units()[1]
     except (AttributeError, IndexError, TypeError, ValueError):
         return None
-    if len(zooms) < 4 or unit not in _TIME_UNITS_S:
+    if len(zooms) < 4:
         return None
-    value = float(zooms[3]) * _TIME_UNITS_S[unit]
+    value = float(zooms[3]) * _TIME_UNITS_S.get(unit, 1.0)
     return value if np.isfinite(value) and value > 0 else None
 
 
@@ -300,7 +316,8 @@ def read_run_timing(bold: BoldHeader, sidecar: str | os.PathLike[str] | None,
     return choose_repetition_time(
         bold_path=bold.path, sidecar_path=None if sidecar is None else os.fspath(sidecar),
         sidecar_tr_s=sidecar_repetition_time_s(meta, sidecar) if sidecar is not None else None,
-        header_tr_s=bold.repetition_time_s, configured_tr_s=configured_tr_s, slice_timing_s=meta.get("SliceTiming"))
+        header_tr_s=bold.repetition_time_s, header_unit_known=bold.time_unit_known, configured_tr_s=configured_tr_s,
+        slice_timing_s=meta.get("SliceTiming"))
 
 
 def check_repetition_time(bold: BoldHeader, repetition_time_s: float) -> list[str]:

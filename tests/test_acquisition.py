@@ -21,7 +21,8 @@ from glmsteps.errors import ConfigError, DataError, GlmstepsWarning
 from glmsteps.jobs import confounds as confounds_job
 from glmsteps.jobs import design as design_job
 from glmsteps.jobs import events as events_job
-from glmsteps.volumes import bids_sidecar_of, header_repetition_time_s, read_bold_header, read_run_timing
+from glmsteps.volumes import (bids_sidecar_of, header_repetition_time_s, header_time_unit_known, read_bold_header,
+                              read_run_timing)
 
 BOLD = "sub-01_task-x_run-1_bold.nii.gz"
 SIDE = "sub-01_task-x_run-1_bold.json"
@@ -108,16 +109,33 @@ def write_bold(path: Path, tr_s: float | None, unit: str = "sec", n_volumes: int
     return path
 
 
-@pytest.mark.parametrize(("value", "unit", "expected"), [
-    (2.0, "sec", 2.0), (800.0, "msec", 0.8), (1.5e6, "usec", 1.5), (2.0, "unknown", None), (0.0, "sec", None),
+@pytest.mark.parametrize(("value", "unit", "expected", "known"), [
+    (2.0, "sec", 2.0, True), (800.0, "msec", 0.8, True), (1.5e6, "usec", 1.5, True), (2.0, "unknown", 2.0, False),
+    (0.0, "sec", None, True),
 ])
-def test_header_tr_uses_the_time_unit(tmp_path, value, unit, expected):
+def test_header_tr_uses_the_time_unit(tmp_path, value, unit, expected, known):
     img = nib.Nifti1Image(np.zeros((2, 2, 2, 3), dtype=np.float32), np.eye(4))
     img.header.set_zooms((1.0, 1.0, 1.0, value))
     img.header.set_xyzt_units("mm", unit)  # reference: nibabel writes the NIfTI-1 time-unit code
     nib.save(img, tmp_path / "b.nii")
-    got = header_repetition_time_s(nib.load(tmp_path / "b.nii").header)
+    header = nib.load(tmp_path / "b.nii").header
+    got = header_repetition_time_s(header)
     assert got == (None if expected is None else pytest.approx(expected, rel=1e-12))
+    assert header_time_unit_known(header) is known
+
+
+def test_unitless_header_is_checked_but_never_relied_on_alone():
+    # nibabel's default 4D header: pixdim[4] = 1 with no unit; it says nothing about the TR
+    with pytest.raises(DataError, match="pixdim\\[4\\] but no time unit"):
+        rule(sidecar_path=None, header_tr_s=1.0, header_unit_known=False)
+    t = rule(sidecar_path=None, header_tr_s=2.0, header_unit_known=False, configured_tr_s=2.0)
+    assert (t.repetition_time_s, t.source) == (2.0, "config")
+    with pytest.raises(DataError, match=r"header TR \(pixdim\[4\]\) 1 s differs from the configured "
+                                        r"repetition_time_s 2 s .* no time unit"):
+        rule(sidecar_path=None, header_tr_s=1.0, header_unit_known=False, configured_tr_s=2.0)
+    # with a sidecar TR the unit-less header only warns when it disagrees
+    with pytest.warns(GlmstepsWarning):
+        assert rule(sidecar_tr_s=2.0, header_tr_s=1.0, header_unit_known=False).repetition_time_s == 2.0
 
 
 def test_read_run_timing_from_sidecar_and_header(tmp_path):
@@ -136,10 +154,12 @@ def test_read_run_timing_from_sidecar_and_header(tmp_path):
     # no sidecar: the header's TR
     assert read_run_timing(read_bold_header(bold), None, None).source == "header"
     # no unit in the header and no sidecar: no TR unless one is configured
-    plain = write_bold(tmp_path / "plain_bold.nii.gz", None)
+    plain = write_bold(tmp_path / "plain_bold.nii.gz", None)  # pixdim[4] = 1 and no unit: no TR stated
     with pytest.raises(DataError, match="no repetition time"):
         read_run_timing(read_bold_header(plain), None, None)
-    assert read_run_timing(read_bold_header(plain), None, 1.25).repetition_time_s == 1.25
+    assert read_run_timing(read_bold_header(plain), None, 1.0).source == "config"
+    with pytest.raises(DataError, match="no time unit"):  # the unit-less pixdim[4] is still a check
+        read_run_timing(read_bold_header(plain), None, 1.25)
 
 
 # --------------------------------------------------------------------------- a two-site study, one config
