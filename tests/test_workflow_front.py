@@ -91,3 +91,16 @@ def test_toy_design_carries_only_the_new_names_and_titles_read_as_runs(toy_resul
     confounds = read_json(run / "confounds.json")
     assert set(confounds["motion"]["columns"]) == {f"move_{a}_mm" for a in "xyz"} | {f"turn_{a}_rad" for a in "xyz"}
     assert confounds["motion"]["censor"]["column"] == "displacement_mm"
+
+
+@pytest.mark.parametrize(("section", "edit", "words"), [
+    ("design", {"hrf": "glover"}, ["design.hrf", "'glover'", "'glover_1999'"]),
+    ("contrasts", {"tap_latency": {"weights": {"tap__derivative": 1}}}, ["tap__derivative", "'tap__latency'"]),
+])
+def test_an_old_name_stops_the_workflow_with_the_new_name(toy_results, section, edit, words):
+    config = copy.deepcopy(toy_results.config)
+    config[section].update(edit)
+    proc = toy_results.snakemake("--dry-run", "--cores", "1", config=config, check=False)
+    assert proc.returncode != 0
+    lines = [line for line in (proc.stdout + proc.stderr).splitlines() if "ConfigError:" in line]
+    assert len(lines) == 1 and all(w in lines[0] for w in words), proc.stderr[-2000:]
