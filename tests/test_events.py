@@ -344,3 +344,14 @@ def test_duplicated_file_would_halve_every_effect(tmp_path):
     y = X1 @ np.array([1.0, -0.5, 10.0])
     # reference: numpy lstsq; doubled regressors give half the betas (worked by hand: X2 = [2 a, 2 b, 1])
     np.testing.assert_allclose(np.linalg.lstsq(X2, y, rcond=None)[0][:2], [0.5, -0.25], atol=1e-9)
+
+
+def test_schema_offers_exactly_the_row_policies_the_step_knows():
+    import yaml
+
+    from glmsteps.events import DUPLICATE_POLICIES, MISSING_DURATION_POLICIES
+    schema = yaml.safe_load((Path(__file__).resolve().parents[1] / "config" / "schema.yaml").read_text())
+    events = schema["properties"]["events"]["properties"]
+    assert tuple(events["duplicate_events"]["enum"]) == DUPLICATE_POLICIES and events["duplicate_events"]["default"] == "error"
+    assert tuple(events["missing_duration"]["enum"]) == MISSING_DURATION_POLICIES
+    assert events["missing_duration"]["default"] == "error"
