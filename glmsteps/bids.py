@@ -10,6 +10,7 @@ from __future__ import annotations
 import glob
 import os
 import re
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -52,6 +53,40 @@ def parse_run_id(subject: str, run_id: str) -> RunKey:
     if not m:
         raise ConfigError(f"run folder name {run_id!r} is not of the form [ses-X_]task-Y_run-Z")
     return RunKey(subject=subject, task=m["task"], run=m["run"], session=m["session"] or "")
+
+
+def run_label(wildcards: Mapping[str, str]) -> str:
+    """A run named as in its folder, for figure titles: ``sub-04 task-beacon_run-1``.
+
+    Parameters
+    ----------
+    wildcards : mapping of str to str
+        ``subject`` and ``run_id`` (the workflow's wildcards), or ``subject``,
+        ``session``, ``task``, ``run``; other keys are ignored, empty values
+        skipped.
+
+    Returns
+    -------
+    str
+        ``""`` when nothing identifies the run.
+
+    Examples
+    --------
+    >>> run_label({"subject": "04", "run_id": "task-beacon_run-1"})
+    'sub-04 task-beacon_run-1'
+    >>> run_label({"subject": "01", "session": "2", "task": "demo", "run": "1"})
+    'sub-01 ses-2_task-demo_run-1'
+    """
+    get = {k: str(v) for k, v in dict(wildcards).items() if v}
+    parts = [f"sub-{get['subject']}"] if "subject" in get else []
+    if "run_id" in get:
+        parts.append(get["run_id"])
+    else:
+        entities = [f"{prefix}-{get[key]}" for key, prefix in (("session", "ses"), ("task", "task"), ("run", "run"))
+                    if key in get]
+        if entities:
+            parts.append("_".join(entities))
+    return " ".join(parts)
 
 
 def check_pattern(name: str, pattern: str) -> None:

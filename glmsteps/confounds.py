@@ -22,12 +22,10 @@ import numpy.typing as npt
 import pandas as pd
 
 from .errors import ConfigError, ConfoundsError, GlmstepsWarning
+from .names import DIFF_SUFFIX, SPIKE_PREFIX, SQUARE_SUFFIX
 
-#: Suffixes of the expanded columns.
-DIFF_SUFFIX = "_diff"
-SQUARE_SUFFIX = "_sq"
-#: Prefix of the one-hot censoring regressors.
-SPIKE_PREFIX = "spike_"
+#: Units of motion columns, read from the end of the column name (``move_x_mm``, ``turn_x_rad``).
+MOTION_UNITS: dict[str, str] = {"_mm": "mm", "_rad": "rad", "_deg": "deg"}
 
 
 def _where(index: int) -> str:
@@ -131,7 +129,8 @@ def clean_confound_values(table: pd.DataFrame, *, source: str,
             found = "n/a" if pd.isna(cell) else repr(cell) if isinstance(cell, str) else str(cell)
             raise ConfoundsError(f"{source}: {_where(i)}, column '{name}': found {found}, expected a finite number; "
                                  "fix the table, or leave the column out of confounds.columns (n/a is accepted "
-                                 "only in the first row of a derivative column)")
+                                 "only in the first row of a derivative column: a name ending in _diff or one "
+                                 "listed in confounds.derivative_columns)")
         out[str(name)] = values
     return pd.DataFrame(out, index=pd.RangeIndex(len(table)), columns=[str(c) for c in table.columns])
 
@@ -207,8 +206,9 @@ def expand_confounds(table: pd.DataFrame, *, derivatives: bool, squares: bool, s
     seen: set[str] = set()
     for n in all_names:
         if n in seen:
-            raise ConfoundsError(f"{source + ': ' if source else ''}expanded confound column '{n}' clashes with a selected column of the same name; "
-                                 "leave that column out of confounds.columns or turn off the expansion")
+            raise ConfoundsError(f"{source + ': ' if source else ''}expanded confound column '{n}' clashes with a "
+                                 "selected column of the same name; leave that column out of confounds.columns or "
+                                 "set confounds.derivatives / confounds.squares to false")
         seen.add(n)
     data = np.hstack([values for _, values in blocks]) if names else np.zeros((len(table), 0))
     return pd.DataFrame(data, columns=all_names, index=pd.RangeIndex(len(table)))
@@ -392,7 +392,7 @@ def _check_settings(table: pd.DataFrame, *, source: str, columns: Sequence[str],
     if censor_column is not None:
         if not isinstance(censor_column, str) or censor_column not in table.columns:
             raise ConfoundsError(f"{source}: censor column {censor_column!r} not found; columns present: {present}; "
-                                 "set confounds.censor.column to one of them or set censor to null")
+                                 "set confounds.censor.column to one of them or set confounds.censor to null")
         if not _is_number(censor_threshold):
             raise ConfigError(f"config confounds.censor.threshold is {censor_threshold!r}; expected a finite number "
                               "in the unit of the censor column (e.g. 0.5 mm)")
@@ -404,7 +404,7 @@ def _check_settings(table: pd.DataFrame, *, source: str, columns: Sequence[str],
                           "expected a whole number of volumes >= 0")
     if drop_initial_volumes >= len(table):
         raise ConfoundsError(f"{source}: confounds.drop_initial_volumes is {drop_initial_volumes} but the table has "
-                             f"only {len(table)} rows (volumes); lower drop_initial_volumes")
+                             f"only {len(table)} rows (volumes); lower confounds.drop_initial_volumes")
     if not _is_number(max_censored_fraction) or not 0 <= max_censored_fraction <= 1:
         raise ConfigError(f"config confounds.max_censored_fraction is {max_censored_fraction!r}; "
                           "expected a number between 0 and 1")
@@ -506,7 +506,97 @@ def prepare_confounds(table: pd.DataFrame, *, source: str, columns: Sequence[str
     reason = ""
     if excluded:
         reason = (f"{n_censored} of {n_kept} kept volumes censored ({fraction:.1%}) with {censor_column} > "
-                  f"{censor_threshold:g}, more than max_censored_fraction {max_censored_fraction:g}")
+                  f"{censor_threshold:g}, more than confounds.max_censored_fraction {max_censored_fraction:g}")
         warnings.warn(f"{source}: run excluded: {reason}", GlmstepsWarning, stacklevel=2)
     return ConfoundSet(regressors=regressors, censored=censored, n_dropped=n_dropped, censored_fraction=fraction,
                        excluded=bool(excluded), exclusion_reason=reason, selected_columns=tuple(selected))
+
+
+def check_row_count(table: pd.DataFrame, n_volumes: int, *, source: str, bold: str) -> None:
+    """A confounds table must have one data row per BOLD volume.
+
+    Raises
+    ------
+    ConfoundsError
+        Names the confounds file, its row count and the BOLD's volume count.
+    """
+    if len(table) != n_volumes:
+        raise ConfoundsError(f"{source}: {len(table)} data rows (header line not counted) but the BOLD {bold} has "
+                             f"{n_volumes} volumes; expected one row per volume; check that inputs.confounds points "
+                             "at this run's table, or regenerate it")
+
+
+def column_unit(name: str) -> str | None:
+    """Unit of a motion column from the end of its name (``_mm``, ``_rad``, ``_deg``), None otherwise.
+
+    Examples
+    --------
+    >>> column_unit("move_x_mm"), column_unit("turn_z_rad"), column_unit("white_matter_mean")
+    ('mm', 'rad', None)
+    """
+    for suffix, unit in MOTION_UNITS.items():
+        if name.endswith(suffix):
+            return unit
+    return None
+
+
+def motion_summary(traces: pd.DataFrame, *, n_dropped: int, censor_values: npt.ArrayLike | None = None,
+                   censor_column: str | None = None, censor_defined: npt.ArrayLike | None = None,
+                   censor_threshold: float | None = None) -> dict[str, Any]:
+    """Head-motion summary of a run over the volumes kept in the model.
+
+    Parameters
+    ----------
+    traces : DataFrame, shape (n_volumes, k), float64
+        The selected confound columns (before expansion); the motion columns
+        among them are those with a unit suffix (:func:`column_unit`).
+    n_dropped : int
+        Initial volumes left out of the model (not summarised).
+    censor_values : array_like, shape (n_volumes,), optional
+        The censoring measure (e.g. framewise displacement, mm).
+    censor_column : str, optional
+        Its column name.
+    censor_defined : array_like of bool, shape (n_volumes,), optional
+        Volumes where the measure was given (its first row is often ``n/a``:
+        a displacement between volumes is undefined at volume 0).
+    censor_threshold : float, optional
+        Censoring threshold (counted: volumes above it).
+
+    Returns
+    -------
+    dict
+        ``{"volumes_summarised", "columns": {name: {"unit", "max_abs",
+        "max_abs_volume"}}, "censor": None or {"column", "mean", "max",
+        "max_volume", "n_above_threshold", "threshold"}}``; volume indices are
+        0-based.
+
+    Notes
+    -----
+    Mean and maximum framewise displacement per run are the usual
+    head-motion summaries (Power et al. 2012, NeuroImage 59:2142-2154, from
+    memory); here they are taken over the kept volumes where the measure is
+    defined.
+    """
+    n = len(traces)
+    kept = np.arange(n) >= n_dropped
+    columns = {}
+    for name in traces.columns:
+        unit = column_unit(str(name))
+        if unit is None:
+            continue
+        values = np.abs(traces[name].to_numpy(dtype=np.float64))
+        masked = np.where(kept, values, -np.inf)
+        j = int(np.argmax(masked))
+        columns[str(name)] = {"unit": unit, "max_abs": float(values[j]), "max_abs_volume": j}
+    censor = None
+    if censor_values is not None:
+        values = np.asarray(censor_values, dtype=np.float64)
+        use = kept & (np.ones(values.shape, dtype=bool) if censor_defined is None
+                      else np.asarray(censor_defined, dtype=bool))
+        if use.any():
+            j = int(np.flatnonzero(use)[np.argmax(values[use])])
+            censor = {"column": censor_column, "mean": float(values[use].mean()), "max": float(values[j]),
+                      "max_volume": j, "threshold": censor_threshold,
+                      "n_above_threshold": None if censor_threshold is None
+                      else int(np.sum(values[use] > censor_threshold))}
+    return {"volumes_summarised": int(kept.sum()), "columns": columns, "censor": censor}

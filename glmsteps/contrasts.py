@@ -18,9 +18,10 @@ A *key* is resolved in this order:
    with an FIR basis (no main column) spreads the weight equally over its
    ``fir<k>`` bins, each getting ``weight / n_bins`` (so the contrast is the
    mean response over the bins);
-2. an exact design column name (``A__derivative``, ``drift_1``, ...);
+2. an exact design column name (``A__latency``, ``A__width``, ``slow_01``,
+   ``intercept``, a confound column, ...);
 3. in an F contrast row only, ``<condition>__all``: every basis column of
-   the condition (main, derivative, dispersion, fir bins; not modulators)
+   the condition (main, latency, width, fir bins; not modulators)
    as separate rows. A row holding several ``__all`` keys pairs their basis
    columns in order (they must have the same number); plain keys of that
    row are repeated in each expanded row.
@@ -38,10 +39,12 @@ import numpy.typing as npt
 
 from . import stats
 from .errors import ContrastError
+from .names import ALL_SUFFIX, FIR_PREFIX, LATENCY_BASIS, WIDTH_BASIS
+from .renames import renamed_column
 
-ALL_SUFFIX = "__all"
 Kind = Literal["t", "F"]
-_BASIS_COLUMNS = ("main", "derivative", "dispersion")
+#: Basis labels of a condition's response columns (besides the ``fir<k>`` bins); see glmsteps.names.
+_BASIS_COLUMNS = ("main", LATENCY_BASIS, WIDTH_BASIS)
 
 
 @dataclass(frozen=True)
@@ -124,9 +127,9 @@ def parse_spec(name: str, spec: Mapping[str, Any], tail: str | None = None) -> C
 
 
 def _condition_columns(cond: str, conditions: Sequence[str], basis: Sequence[str]) -> list[int]:
-    """Indices of a condition's basis columns (main/derivative/dispersion/fir), in design order."""
+    """Indices of a condition's basis columns (main/latency/width/fir), in design order."""
     return [j for j, (c, b) in enumerate(zip(conditions, basis))
-            if c == cond and (b in _BASIS_COLUMNS or str(b).startswith("fir"))]
+            if c == cond and (b in _BASIS_COLUMNS or str(b).startswith(FIR_PREFIX))]
 
 
 def _resolve_key(spec: ContrastSpec, key: str, names: Sequence[str], conditions: Sequence[str],
@@ -136,12 +139,16 @@ def _resolve_key(spec: ContrastSpec, key: str, names: Sequence[str], conditions:
         main = [j for j, (c, b) in enumerate(zip(conditions, basis)) if c == key and b == "main"]
         if main:
             return [(main[0], 1.0)]
-        fir = [j for j, (c, b) in enumerate(zip(conditions, basis)) if c == key and str(b).startswith("fir")]
+        fir = [j for j, (c, b) in enumerate(zip(conditions, basis)) if c == key and str(b).startswith(FIR_PREFIX)]
         if fir:
             return [(j, 1.0 / len(fir)) for j in fir]
     if key in names:
         return [(list(names).index(key), 1.0)]
     available_conditions = sorted({c for c in conditions if c})
+    new = renamed_column(key)
+    if new is not None:
+        raise ContrastError(f"contrast {spec.name!r}: key {key!r} is an old design column name; the column is now "
+                            f"called {new!r}; use that key in the contrast weights")
     raise ContrastError(f"contrast {spec.name!r}: key {key!r} is neither a condition nor a design column; "
                         f"available conditions: {available_conditions}; columns: {list(names)}")
 
@@ -156,7 +163,7 @@ def contrast_matrix(spec: ContrastSpec | Mapping[str, Any], names: Sequence[str]
         The contrast (a raw mapping is validated with :func:`parse_spec`).
     names, conditions, basis : sequence of str, length p
         Design column names, the condition of each column ('' for nuisance
-        columns), and its basis (``main``, ``derivative``, ``dispersion``,
+        columns), and its basis (``main``, ``latency``, ``width``,
         ``fir<k>``, ``modulator`` or '').
     name : str
         Contrast name used when ``spec`` is a raw mapping.

@@ -3,11 +3,12 @@
 Pure maths: tables and arrays in, arrays out, no file access.
 
 Column conventions (see DEVELOPERS.md): a condition's main regressor carries
-the condition's name; other basis columns are ``<condition>__derivative``,
-``<condition>__dispersion`` and ``<condition>__fir<k>``; parametric modulators
-``<condition>__x_<column>``; drifts ``drift_<k>`` with k written as two
-digits from 01 (k is the cosine frequency index or the polynomial degree);
-confounds keep their names
+the condition's name; other basis columns are ``<condition>__latency`` (a
+shift of the response in time), ``<condition>__width`` (a wider or narrower
+response) and ``<condition>__fir<k>``; parametric modulators
+``<condition>__x_<column>``; the slow-signal (drift) basis ``slow_<k>`` with
+k written as two digits from 01 (k is the cosine frequency index or the
+polynomial degree); confounds keep their names
 (``spike_*`` columns get the role ``spike``); one ``intercept``. Column order:
 conditions (each with its basis columns then its modulators), confounds in
 table order, drifts, intercept.
@@ -27,12 +28,14 @@ from scipy.signal import fftconvolve
 
 from .errors import DesignError, GlmstepsWarning
 from .hrf import HRF_MODELS, ResponseModel, hrf_basis
+from .names import BASIS_SEPARATOR, INTERCEPT, MODULATOR_INFIX, SLOW_PREFIX, SPIKE_PREFIX
 
 DriftModel = Literal["cosine", "legendre", "none"]
 DRIFT_MODELS: tuple[str, ...] = ("cosine", "legendre", "none")
 #: Largest allowed step of the oversampled stimulus grid (seconds).
 MAX_DT_S: float = 0.1
 ROLES: tuple[str, ...] = ("interest", "modulator", "drift", "confound", "spike", "intercept")
+
 
 
 @dataclass(frozen=True)
@@ -50,7 +53,7 @@ class Design:
     conditions : tuple of str
         Condition of each column, ``""`` for nuisance columns.
     basis : tuple of str
-        ``main``, ``derivative``, ``dispersion``, ``fir<k>``, ``modulator`` or ``""``.
+        ``main``, ``latency``, ``width``, ``fir<k>``, ``modulator`` or ``""``.
     frame_times_s : ndarray, shape (n_scans,), float64
         Acquisition time of each row (seconds, absolute from the first acquired volume).
     """
@@ -99,10 +102,10 @@ def frame_times(n_volumes: int, repetition_time_s: float, volume_time_fraction: 
         raise DesignError(f"n_volumes={n_volumes!r} must be a whole number >= 1; check the BOLD volume count")
     if not (np.isfinite(repetition_time_s) and repetition_time_s > 0):
         raise DesignError(f"repetition_time_s={repetition_time_s!r} must be a positive number of seconds; "
-                          "set it in the config")
+                          "give the run's TR in its BIDS sidecar (RepetitionTime) or set acquisition.repetition_time_s")
     if not (np.isfinite(volume_time_fraction) and 0.0 <= volume_time_fraction <= 1.0):
         raise DesignError(f"volume_time_fraction={volume_time_fraction!r} must be between 0 and 1 (fraction of the TR); "
-                          "use 0.5 for the middle of the volume")
+                          "set acquisition.volume_time_fraction to 0.5 for the middle of the volume")
     if int(first_volume) != first_volume or first_volume < 0:
         raise DesignError(f"first_volume={first_volume!r} must be a whole number >= 0")
     return (int(first_volume) + np.arange(int(n_volumes), dtype=np.float64) + float(volume_time_fraction)) * float(
@@ -219,7 +222,7 @@ def _check_frames(frame_times_s: npt.ArrayLike) -> npt.NDArray[np.float64]:
         raise DesignError(f"frame times must be a 1-D array of at least 2 volumes, found shape {ft.shape}")
     step = np.diff(ft)
     if not (np.all(np.isfinite(ft)) and np.all(step > 0) and np.allclose(step, step[0], rtol=1e-6, atol=0)):
-        raise DesignError("frame times must be finite and evenly spaced (one TR apart); check repetition_time_s")
+        raise DesignError("frame times must be finite and evenly spaced (one TR apart); check the run's repetition time")
     return ft
 
 
@@ -261,7 +264,7 @@ def cosine_drift(frame_times_s: npt.ArrayLike, cutoff_s: float = 128.0) -> npt.N
     """
     ft = _check_frames(frame_times_s)
     if not (np.isfinite(cutoff_s) and cutoff_s > 0):
-        raise DesignError(f"cutoff_s={cutoff_s!r} must be a positive number of seconds; use e.g. 128")
+        raise DesignError(f"cutoff_s={cutoff_s!r} must be a positive number of seconds; set design.drift.cutoff_s to e.g. 128")
     n = ft.size
     tr = float(ft[1] - ft[0])
     k = np.arange(1, cosine_drift_count(n, tr, cutoff_s) + 1, dtype=np.float64)
@@ -297,7 +300,7 @@ def legendre_drift(frame_times_s: npt.ArrayLike, order: int) -> npt.NDArray[np.f
     ft = _check_frames(frame_times_s)
     if int(order) != order or order < 1 or order >= ft.size:
         raise DesignError(f"legendre_order={order!r} must be a whole number from 1 to n_volumes - 1 "
-                          f"({ft.size - 1}); set design.legendre_order")
+                          f"({ft.size - 1}); set design.drift.legendre_order")
     x = 2.0 * (ft - ft[0]) / (ft[-1] - ft[0]) - 1.0
     vander = np.polynomial.legendre.legvander(x, int(order))
     q, r = np.linalg.qr(vander)
@@ -314,11 +317,11 @@ def _ordered_conditions(present: Sequence[str], conditions: Sequence[str]) -> li
         return sorted(present_set)
     if len(set(conditions)) != len(conditions):
         dup = sorted({c for c in conditions if list(conditions).count(c) > 1})
-        raise DesignError(f"conditions list repeats {dup}; list each condition once")
+        raise DesignError(f"conditions list repeats {dup}; list each condition once in events.conditions")
     extra = sorted(set(present_set) - set(conditions))
     if extra:
         warnings.warn(f"events conditions {extra} are not in the configured conditions list and are not modelled "
-                      "(they fall into the baseline); add them to conditions to model them", GlmstepsWarning,
+                      "(they fall into the baseline); add them to events.conditions to model them", GlmstepsWarning,
                       stacklevel=3)
     for c in conditions:
         if c not in present_set:
@@ -340,8 +343,8 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
         Clean events (one row per event).
     frame_times_s : array_like, shape (n_scans,)
         Frame times of the rows to model (seconds, absolute; see :func:`frame_times`).
-    hrf : {"double_gamma", "double_gamma_derivative", "double_gamma_dispersion", "glover", "fir"}
-        response model (:func:`glmsteps.hrf.hrf_basis`).
+    hrf : {"double_gamma", "double_gamma_latency", "double_gamma_latency_width", "glover_1999", "fir"}
+        Response model (:func:`glmsteps.hrf.hrf_basis`).
     dt_s : float
         Oversampling step (seconds, <= 0.1).
     fir_bins : int
@@ -383,7 +386,7 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
     if hrf not in HRF_MODELS:
         raise DesignError(f"unknown response model {hrf!r}; set design.hrf to one of {', '.join(HRF_MODELS)}")
     if drift_basis not in DRIFT_MODELS:
-        raise DesignError(f"unknown drift basis {drift_basis!r}; set design.drift_basis to one of "
+        raise DesignError(f"unknown drift basis {drift_basis!r}; set design.drift.basis to one of "
                           f"{', '.join(DRIFT_MODELS)}")
     dt = _check_dt(dt_s)
     for col in ("onset", "duration", "condition"):
@@ -391,7 +394,7 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
             raise DesignError(f"events table has no {col!r} column; found {list(events.columns)}")
     if hrf == "fir" and any(len(v) for v in mods.values()):
         raise DesignError("parametric modulators need a gamma response model, not fir; "
-                          "remove the modulators or choose another design.hrf")
+                          "remove events.modulators or choose another design.hrf")
     cond_values = events["condition"].astype(str)
     order = _ordered_conditions(list(cond_values), list(conditions))
     for c in mods:
@@ -416,7 +419,7 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
             reg = np.zeros((n, kernels.shape[1]))
         for j, label in enumerate(labels):
             cols.append(reg[:, j])
-            names.append(c if label == "main" else f"{c}__{label}")
+            names.append(c if label == "main" else f"{c}{BASIS_SEPARATOR}{label}")
             roles.append("interest")
             conds.append(c)
             basis.append(label)
@@ -428,7 +431,7 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
             bad = np.nonzero(~np.isfinite(values))[0]
             if bad.size:
                 raise DesignError(f"events row {rows.index[bad[0]]}: modulator {m!r} of condition {c!r} is "
-                                  f"{rows[m].iloc[bad[0]]!r}, expected a number; fill it or drop the event")
+                                  f"{rows[m].iloc[bad[0]]!r}, expected a number; fill it in or remove the column from events.modulators")
             centred = values - values.mean() if values.size else values
             if values.size and np.allclose(centred, 0.0, atol=1e-12 * max(1.0, float(np.abs(values).max()))):
                 warnings.warn(f"modulator {m!r} of condition {c!r} is constant over its events; its column is "
@@ -439,7 +442,7 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
             else:
                 mreg = np.zeros(n)
             cols.append(mreg)
-            names.append(f"{c}__x_{m}")
+            names.append(f"{c}{MODULATOR_INFIX}{m}")
             roles.append("modulator")
             conds.append(c)
             basis.append("modulator")
@@ -454,7 +457,7 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
             if bad.size:
                 raise DesignError(f"confounds column {name!r} row {bad[0]}: found {confounds[name].iloc[bad[0]]!r}, "
                                   "expected a finite number; fill missing confound values upstream")
-            is_spike = str(name).startswith("spike_")
+            is_spike = str(name).startswith(SPIKE_PREFIX)
             if is_spike and not np.any(values != 0):
                 warnings.warn(f"spike column {name!r} is zero on every modelled volume (its volume was dropped); "
                               "it is left out of the design", GlmstepsWarning, stacklevel=2)
@@ -473,18 +476,18 @@ def build_design(events: pd.DataFrame, frame_times_s: npt.ArrayLike, *, hrf: Res
         drift = np.zeros((n, 0))
     for k in range(drift.shape[1]):
         cols.append(drift[:, k])
-        names.append(f"drift_{k + 1:02d}")
+        names.append(f"{SLOW_PREFIX}{k + 1:02d}")
         roles.append("drift")
         conds.append("")
         basis.append("")
     seen: set[str] = set()
     for name in names:
-        if name in seen or name == "intercept":
+        if name in seen or name == INTERCEPT:
             raise DesignError(f"design column name {name!r} occurs twice (a condition, modulator or confound "
                               "shares a name); rename the condition or the confound column")
         seen.add(name)
     cols.append(np.ones(n))
-    names.append("intercept")
+    names.append(INTERCEPT)
     roles.append("intercept")
     conds.append("")
     basis.append("")

@@ -5,7 +5,12 @@ Pure maths: arrays in, arrays out, no file access.
 Every continuous kernel is a difference of two gamma densities. A kernel set
 for one model is sampled on ``t_s = 0, dt_s, 2 dt_s, ...`` up to (excluding)
 ``length_s`` and returned as ``kernels (n_t, k)`` together with one label per
-column (``main``, ``derivative``, ``dispersion``, ``fir00`` ...).
+column (``main``, ``latency``, ``width``, ``fir00`` ...).
+
+Basis words (our own): ``latency`` is the column that models a shift of the
+response in time (the finite-difference derivative with respect to onset),
+``width`` the column that models a wider or narrower response (the derivative
+with respect to the response dispersion).
 
 Normalisation
 -------------
@@ -14,8 +19,8 @@ Riemann sum of the sampled kernel), so that its integral over the sampled
 window is exactly 1: convolving a boxcar of height 1 that lasts longer than
 the kernel window gives a plateau of 1 (in the units of the stimulus), and an
 impulse of unit area gives a response whose area is 1. The derivative kernels
-are finite differences of the *same* normalised function (one shared
-constant), so their integral is close to 0. FIR kernels are boxcars of height 1
+(latency, width) are finite differences of the *same* normalised function
+(one shared constant), so their integral is close to 0. FIR kernels are boxcars of height 1
 and are not normalised: a unit-area impulse gives 1 in every volume whose
 delay after the onset falls inside that bin (a fraction within one time step
 of a bin edge).
@@ -30,18 +35,20 @@ import numpy.typing as npt
 from scipy.special import gammaln
 
 from .errors import ConfigError
+from .names import FIR_PREFIX, LATENCY_BASIS, WIDTH_BASIS
 
-ResponseModel = Literal["double_gamma", "double_gamma_derivative", "double_gamma_dispersion", "glover", "fir"]
+ResponseModel = Literal["double_gamma", "double_gamma_latency", "double_gamma_latency_width", "glover_1999", "fir"]
 
-#: The accepted ``model`` names of :func:`hrf_basis`.
-HRF_MODELS: tuple[str, ...] = ("double_gamma", "double_gamma_derivative", "double_gamma_dispersion", "glover", "fir")
+#: The accepted ``model`` names of :func:`hrf_basis` (``design.hrf`` in the config).
+HRF_MODELS: tuple[str, ...] = ("double_gamma", "double_gamma_latency", "double_gamma_latency_width", "glover_1999",
+                               "fir")
 
 #: Default length of the sampled kernel window (seconds).
 KERNEL_LENGTH_S: float = 32.0
-#: Delay used for the finite-difference temporal derivative (seconds).
-DERIVATIVE_DELAY_S: float = 0.1
-#: Step of the response dispersion used for the finite-difference dispersion derivative (seconds).
-DISPERSION_STEP_S: float = 0.01
+#: Delay used for the finite-difference latency column (derivative with respect to onset, seconds).
+LATENCY_STEP_S: float = 0.1
+#: Step of the response dispersion used for the finite-difference width column (seconds).
+WIDTH_STEP_S: float = 0.01
 
 #: Canonical double-gamma: mean delay of the response and of the undershoot (s),
 #: their dispersions (s) and the response-to-undershoot amplitude ratio.
@@ -121,7 +128,7 @@ def double_gamma(t_s: npt.ArrayLike, *, peak_delay_s: float = PEAK_DELAY_S,
     Friston et al. (1998), "Event-related fMRI: characterizing differential
     responses", NeuroImage 7:30-40 (parameter values from memory). Writing the
     shape as delay / dispersion keeps the mean delay fixed when the dispersion
-    changes, which is what the dispersion derivative perturbs.
+    changes, which is what the width column perturbs.
     """
     return (gamma_density(t_s, peak_delay_s / peak_dispersion_s, peak_dispersion_s)
             - ratio * gamma_density(t_s, undershoot_delay_s / undershoot_dispersion_s, undershoot_dispersion_s))
@@ -179,7 +186,8 @@ def kernel_time_grid(dt_s: float, length_s: float = KERNEL_LENGTH_S) -> npt.NDAr
         n_t = ceil(length_s / dt_s) (rounded to absorb float error).
     """
     if not (np.isfinite(dt_s) and dt_s > 0):
-        raise ConfigError(f"HRF time step dt_s={dt_s!r} must be a positive number of seconds; use e.g. 0.1")
+        raise ConfigError(f"HRF time step dt_s={dt_s!r} must be a positive number of seconds; "
+                          "set design.time_resolution_s to e.g. 0.1")
     if not (np.isfinite(length_s) and length_s > dt_s):
         raise ConfigError(f"HRF window length_s={length_s!r} must exceed the time step {dt_s} s; use e.g. 32")
     n_t = int(np.ceil(length_s / dt_s - 1e-9))
@@ -225,15 +233,16 @@ def fir_kernels(dt_s: float, n_bins: int, bin_width_s: float) -> npt.NDArray[np.
 
 def hrf_basis(model: ResponseModel, dt_s: float, *, fir_bins: int = 0, fir_bin_width_s: float = 0.0,
               length_s: float = KERNEL_LENGTH_S) -> tuple[npt.NDArray[np.float64], list[str]]:
-    """Sampled kernels of an response model.
+    """Sampled kernels of a response model.
 
     Parameters
     ----------
-    model : {"double_gamma", "double_gamma_derivative", "double_gamma_dispersion", "glover", "fir"}
-        ``double_gamma``: canonical kernel only. ``double_gamma_derivative``:
-        plus its temporal derivative. ``double_gamma_dispersion``: plus the
-        temporal and dispersion derivatives. ``glover``: Glover (1999)
-        kernel. ``fir``: ``fir_bins`` boxcars of ``fir_bin_width_s``.
+    model : {"double_gamma", "double_gamma_latency", "double_gamma_latency_width", "glover_1999", "fir"}
+        ``double_gamma``: canonical kernel only. ``double_gamma_latency``:
+        plus a latency column (temporal derivative). ``double_gamma_latency_width``:
+        plus the latency and width columns (temporal and dispersion
+        derivatives). ``glover_1999``: the Glover (1999) kernel. ``fir``:
+        ``fir_bins`` boxcars of ``fir_bin_width_s``.
     dt_s : float
         Sampling step (seconds).
     fir_bins : int
@@ -248,44 +257,44 @@ def hrf_basis(model: ResponseModel, dt_s: float, *, fir_bins: int = 0, fir_bin_w
     kernels : ndarray, shape (n_t, k), float64
         Kernel k sampled at ``t = i * dt_s``.
     labels : list of str, length k
-        ``main``, ``derivative``, ``dispersion`` or ``fir00``, ``fir01``, ...
+        ``main``, ``latency``, ``width`` or ``fir00``, ``fir01``, ...
 
     Notes
     -----
     Normalisation: ``h_n = h / (sum(h) dt)`` for the main kernel (unit
     integral, see the module docstring).
 
-    Temporal derivative (derivative with respect to onset):
+    Latency column (temporal derivative, with respect to onset):
     ``(h_n(t - delta) - h_n(t)) / delta`` with ``delta`` =
-    ``DERIVATIVE_DELAY_S`` = 0.1 s, i.e. minus the time derivative; a positive
+    ``LATENCY_STEP_S`` = 0.1 s, i.e. minus the time derivative; a positive
     weight models a later response (first-order Taylor expansion of a shifted
     response, Friston et al. 1998).
 
-    Dispersion derivative: ``(h_n(t; s1) - h_n(t; s1 + eps)) / eps`` with the
-    response dispersion s1 = 1 s and ``eps`` = ``DISPERSION_STEP_S`` =
+    Width column (dispersion derivative): ``(h_n(t; s1) - h_n(t; s1 + eps)) / eps``
+    with the response dispersion s1 = 1 s and ``eps`` = ``WIDTH_STEP_S`` =
     0.01 s, at fixed mean delay, scaled by the main kernel's constant.
 
-    The derivative kernels are not orthogonalised against the main kernel.
+    The latency and width kernels are not orthogonalised against the main kernel.
     """
     if model not in HRF_MODELS:
-        raise ConfigError(f"unknown response model {model!r}; use one of {', '.join(HRF_MODELS)}")
+        raise ConfigError(f"unknown response model {model!r}; set design.hrf to one of {', '.join(HRF_MODELS)}")
     if model == "fir":
         kernels = fir_kernels(dt_s, fir_bins, fir_bin_width_s)
-        return kernels, [f"fir{k:02d}" for k in range(kernels.shape[1])]
+        return kernels, [f"{FIR_PREFIX}{k:02d}" for k in range(kernels.shape[1])]
     t = kernel_time_grid(dt_s, length_s)
-    if model == "glover":
+    if model == "glover_1999":
         h = glover_response(t)
         return (h / (h.sum() * dt_s))[:, None], ["main"]
     h = double_gamma(t)
     scale = 1.0 / (h.sum() * dt_s)
     columns = [h * scale]
     labels = ["main"]
-    if model in ("double_gamma_derivative", "double_gamma_dispersion"):
-        shifted = double_gamma(t - DERIVATIVE_DELAY_S)
-        columns.append((shifted - h) * scale / DERIVATIVE_DELAY_S)
-        labels.append("derivative")
-    if model == "double_gamma_dispersion":
-        wider = double_gamma(t, peak_dispersion_s=PEAK_DISPERSION_S + DISPERSION_STEP_S)
-        columns.append((h - wider) * scale / DISPERSION_STEP_S)
-        labels.append("dispersion")
+    if model in ("double_gamma_latency", "double_gamma_latency_width"):
+        shifted = double_gamma(t - LATENCY_STEP_S)
+        columns.append((shifted - h) * scale / LATENCY_STEP_S)
+        labels.append(LATENCY_BASIS)
+    if model == "double_gamma_latency_width":
+        wider = double_gamma(t, peak_dispersion_s=PEAK_DISPERSION_S + WIDTH_STEP_S)
+        columns.append((h - wider) * scale / WIDTH_STEP_S)
+        labels.append(WIDTH_BASIS)
     return np.column_stack(columns), labels

@@ -1,4 +1,4 @@
-"""NIfTI input for the fit: headers, grid and TR checks, streamed masked reading.
+"""NIfTI input: headers, BIDS sidecars and the run's TR, grid checks, streamed masked reading.
 
 The BOLD header is read with nibabel; the voxel data are then streamed volume
 by volume straight from the (gzipped) file and masked as they arrive into an
@@ -31,6 +31,7 @@ from typing import Any, Literal
 import numpy as np
 import numpy.typing as npt
 
+from .acquisition import RunTiming, choose_repetition_time
 from .errors import DataError
 
 
@@ -50,8 +51,6 @@ def _decompression_errors() -> tuple[type[BaseException], ...]:
 
 _DECOMPRESSION_ERRORS = _decompression_errors()
 
-#: Relative tolerance of the TR check.
-TR_RELATIVE_TOLERANCE = 0.01
 #: Tolerance of the affine comparison between mask and BOLD (mm).
 AFFINE_TOLERANCE_MM = 1e-3
 
@@ -74,8 +73,14 @@ class BoldHeader:
     slope, inter : float
         Scaling ``value = slope * stored + inter`` (1 and 0 when unset).
     repetition_time_s : float or None
-        ``pixdim[4]`` converted to seconds, ``None`` if not positive.
+        ``pixdim[4]`` converted to seconds by its time unit, taken as seconds
+        when the header gives no unit (:func:`header_repetition_time_s`);
+        ``None`` when it is not positive.
     compressed : bool
+    time_unit_known : bool
+        The header gives a time unit (s, ms, us); without one its TR is only
+        checked against a configured TR, never relied on alone
+        (:mod:`glmsteps.acquisition`).
     """
 
     path: str
@@ -87,6 +92,7 @@ class BoldHeader:
     inter: float
     repetition_time_s: float | None
     compressed: bool
+    time_unit_known: bool = True
 
     @property
     def voxel_size_mm(self) -> npt.NDArray[np.float64]:
@@ -140,16 +146,55 @@ def read_bold_header(path: str | os.PathLike[str]) -> BoldHeader:
     inter = float(getattr(proxy, "inter", 0.0))
     slope = 1.0 if not np.isfinite(slope) or slope == 0 else slope
     inter = 0.0 if not np.isfinite(inter) else inter
-    zooms = hdr.get_zooms()
-    tr = float(zooms[3]) if len(zooms) > 3 else 0.0
-    t_unit = hdr.get_xyzt_units()[1]
-    if t_unit == "msec":
-        tr /= 1000.0
-    elif t_unit == "usec":
-        tr /= 1e6
     return BoldHeader(path=os.fspath(path), shape=shape, affine=np.asarray(img.affine, dtype=np.float64),
                       dtype=np.dtype(proxy.dtype), vox_offset=int(proxy.offset), slope=slope, inter=inter,
-                      repetition_time_s=tr if tr > 0 else None, compressed=os.fspath(path).endswith(".gz"))
+                      repetition_time_s=header_repetition_time_s(hdr), compressed=os.fspath(path).endswith(".gz"),
+                      time_unit_known=header_time_unit_known(hdr))
+
+
+#: Seconds per NIfTI time unit (``xyzt_units`` as nibabel names it).
+_TIME_UNITS_S: dict[str, float] = {"sec": 1.0, "msec": 1e-3, "usec": 1e-6}
+
+
+def header_time_unit_known(header: Any) -> bool:
+    """True when a NIfTI header gives the time unit of ``pixdim[4]`` (seconds, milliseconds, microseconds)."""
+    try:
+        return header.get_xyzt_units()[1] in _TIME_UNITS_S
+    except (AttributeError, IndexError, TypeError, ValueError):
+        return False
+
+
+def header_repetition_time_s(header: Any) -> float | None:
+    """The TR a NIfTI header states: ``pixdim[4]`` converted to seconds by its time unit.
+
+    Parameters
+    ----------
+    header : nibabel Nifti1Header or Nifti2Header
+
+    Returns
+    -------
+    float or None
+        None when there is no 4th dimension or ``pixdim[4]`` is not positive
+        and finite. Without a time unit (``unknown``) the value is taken as
+        seconds; :func:`header_time_unit_known` tells such headers apart
+        (nibabel and many converters leave ``pixdim[4] = 1`` with no unit,
+        which says nothing about the TR).
+
+    Notes
+    -----
+    NIfTI-1: ``pixdim[4]`` is the time step, its unit in bits 3-5 of
+    ``xyzt_units`` (8 = s, 16 = ms, 24 = us; from memory), read with
+    nibabel's ``get_xyzt_units``.
+    """
+    try:
+        zooms = header.get_zooms()
+        unit = header.get_xyzt_units()[1]
+    except (AttributeError, IndexError, TypeError, ValueError):
+        return None
+    if len(zooms) < 4:
+        return None
+    value = float(zooms[3]) * _TIME_UNITS_S.get(unit, 1.0)
+    return value if np.isfinite(value) and value > 0 else None
 
 
 def read_mask(path: str | os.PathLike[str]) -> tuple[npt.NDArray[np.bool_], npt.NDArray[np.float64]]:
@@ -208,46 +253,103 @@ def bids_sidecar_of(path: str | os.PathLike[str]) -> Path:
     return p.with_suffix(".json")
 
 
+def read_bids_sidecar(path: str | os.PathLike[str]) -> dict[str, Any]:
+    """Read a BIDS JSON sidecar (a JSON object).
+
+    Raises
+    ------
+    DataError
+        Unreadable, not JSON, or not an object.
+    """
+    try:
+        meta = json.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise DataError(f"{path}: cannot read the BIDS sidecar ({exc}); fix it (a JSON object) or remove it") from exc
+    if not isinstance(meta, dict):
+        raise DataError(f"{path}: the BIDS sidecar holds a {type(meta).__name__}, expected a JSON object; fix or "
+                        "remove it")
+    return meta
+
+
+def sidecar_repetition_time_s(meta: dict[str, Any], path: str | os.PathLike[str]) -> float | None:
+    """``RepetitionTime`` of a BIDS sidecar (seconds), None when absent.
+
+    Raises
+    ------
+    DataError
+        Present but not a positive finite number.
+    """
+    if "RepetitionTime" not in meta:
+        return None
+    value = meta["RepetitionTime"]
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not np.isfinite(value) or value <= 0:
+        raise DataError(f"{path}: RepetitionTime is {value!r}; expected a positive number of seconds (BIDS); fix it")
+    return float(value)
+
+
+def read_run_timing(bold: BoldHeader, sidecar: str | os.PathLike[str] | None,
+                    configured_tr_s: float | None) -> RunTiming:
+    """The run's TR and slice timing by the one TR rule (:mod:`glmsteps.acquisition`).
+
+    Parameters
+    ----------
+    bold : BoldHeader
+        The run's BOLD header (its ``repetition_time_s`` is the header's TR).
+    sidecar : path-like or None
+        The run's BIDS JSON sidecar, None when it has none.
+    configured_tr_s : float or None
+        ``acquisition.repetition_time_s``.
+
+    Returns
+    -------
+    RunTiming
+
+    Raises
+    ------
+    DataError, ConfigError
+        See :func:`glmsteps.acquisition.choose_repetition_time`; an unreadable
+        sidecar.
+    """
+    meta: dict[str, Any] = {}
+    if sidecar is not None:
+        meta = read_bids_sidecar(sidecar)
+    return choose_repetition_time(
+        bold_path=bold.path, sidecar_path=None if sidecar is None else os.fspath(sidecar),
+        sidecar_tr_s=sidecar_repetition_time_s(meta, sidecar) if sidecar is not None else None,
+        header_tr_s=bold.repetition_time_s, header_unit_known=bold.time_unit_known, configured_tr_s=configured_tr_s,
+        slice_timing_s=meta.get("SliceTiming"))
+
+
 def check_repetition_time(bold: BoldHeader, repetition_time_s: float) -> list[str]:
-    """Check the configured TR against the BOLD header and its BIDS sidecar.
+    """Check a run's files against an expected TR by the one TR rule.
 
     Parameters
     ----------
     bold : BoldHeader
     repetition_time_s : float
-        Configured TR (seconds).
+        Expected TR (seconds).
 
     Returns
     -------
     list of str
-        The sources that were checked (``header``, ``sidecar``); empty if the
-        file states no TR.
+        The sources that state a TR (``sidecar``, ``header``); empty if the
+        files state none.
 
     Raises
     ------
     DataError
-        If a stated TR differs from the configured one by more than 1 %.
+        If the TR the files state (the sidecar's, else the header's) differs
+        from the expected one by more than 1 % (see
+        :func:`glmsteps.acquisition.choose_repetition_time`).
     """
-    checked = []
     side = bids_sidecar_of(bold.path)
-    if side.exists():
-        try:
-            meta = json.loads(side.read_text(encoding="utf-8"))
-        except (OSError, json.JSONDecodeError) as exc:
-            raise DataError(f"{side}: cannot read BIDS sidecar ({exc}); fix or remove it") from exc
-        if isinstance(meta, dict) and "RepetitionTime" in meta:
-            tr = float(meta["RepetitionTime"])
-            if abs(tr - repetition_time_s) > TR_RELATIVE_TOLERANCE * repetition_time_s:
-                raise DataError(f"{side}: RepetitionTime {tr:g} s differs from the configured repetition_time_s "
-                                f"{repetition_time_s:g} s by more than 1 %; fix the config or the sidecar")
-            checked.append("sidecar")
+    timing = read_run_timing(bold, side if side.exists() else None, repetition_time_s)
+    sources = []
+    if timing.source == "sidecar":
+        sources.append("sidecar")
     if bold.repetition_time_s is not None:
-        tr = bold.repetition_time_s
-        if abs(tr - repetition_time_s) > TR_RELATIVE_TOLERANCE * repetition_time_s:
-            raise DataError(f"{bold.path}: header TR (pixdim[4]) {tr:g} s differs from the configured "
-                            f"repetition_time_s {repetition_time_s:g} s by more than 1 %; fix the config or the header")
-        checked.append("header")
-    return checked
+        sources.append("header")
+    return sources
 
 
 class _HashingReader(io.RawIOBase):

@@ -14,7 +14,10 @@ from snakemake.exceptions import WorkflowError
 from snakemake.utils import validate
 
 from glmsteps.bids import RunKey, check_pattern, discover_runs, parse_run_id
-from glmsteps.errors import ConfigError
+from glmsteps.errors import ConfigError, GlmstepsError
+from glmsteps.precheck import check_config_contrasts
+from glmsteps.renames import check_renamed
+from glmsteps.volumes import bids_sidecar_of
 
 
 def _config_error(message):
@@ -33,6 +36,12 @@ def _schema_error_line(exc):
             return f"config {key}: {cause.message}; config/schema.yaml lists every key with its bounds"
     return f"the config does not match config/schema.yaml ({str(exc).splitlines()[0]})"
 
+
+try:
+    # renamed keywords and old design column names first: the schema would only say "not one of"
+    check_renamed(config)
+except ConfigError as _exc:
+    _config_error(str(_exc))
 
 try:
     validate(config, workflow.source_path("../config/schema.yaml"), set_default=True)
@@ -90,6 +99,21 @@ for _model, _spec in GROUP_MODELS.items():
                           f"(t contrasts: {', '.join(T_CONTRASTS) or 'none'})")
 
 
+def events_files_of_runs():
+    """The raw events TSV of every discovered run (paths only)."""
+    return [os.path.join(_INPUTS["root"], r.fill(_INPUTS["events"])) for r in RUNS]
+
+
+if workflow.is_main_process:
+    # contrast keys against the conditions of the events files, before any job (reads only the condition
+    # column of each events TSV; cluster jobs re-parsing this file skip it)
+    try:
+        check_config_contrasts(config, events_files_of_runs())
+    except GlmstepsError as _exc:
+        sys.stderr.write(f"glmsteps: {type(_exc).__name__}: {_exc}\n")
+        raise SystemExit(1)
+
+
 def _alternation(names):
     """Regex that matches exactly one of ``names`` (never matches when empty)."""
     return "|".join(re.escape(n) for n in names) if names else "(?!x)x"
@@ -133,6 +157,15 @@ def events_file(wildcards):
 def confounds_file(wildcards):
     """Raw confounds TSV of a run."""
     return _raw("confounds", wildcards)
+
+
+def bold_sidecar_file(wildcards):
+    """The BOLD's BIDS JSON sidecar (RepetitionTime, SliceTiming) when the run has one, else nothing.
+
+    An input of validate_events, so that editing it reruns the run's chain.
+    """
+    side = bids_sidecar_of(bold_file(wildcards))
+    return [str(side)] if side.exists() else []
 
 
 def mask_file(wildcards):
@@ -203,9 +236,11 @@ def _canonical_params(helper):
 
 @_canonical_params
 def events_params():
-    """validate_events: the condition column, modulator columns and TR."""
-    modulators = sorted({c for cols in config["events"]["modulators"].values() for c in cols})
-    return {"condition_column": config["events"]["condition_column"], "modulators": modulators,
+    """validate_events: the condition column, modulators, the two row policies and the TR rule's setting."""
+    e = config["events"]
+    return {"condition_column": e["condition_column"],
+            "modulators": {k: list(v) for k, v in e["modulators"].items()},
+            "duplicate_events": e["duplicate_events"], "missing_duration": e["missing_duration"],
             "repetition_time_s": config["acquisition"]["repetition_time_s"]}
 
 
@@ -218,12 +253,11 @@ def confounds_params():
 
 @_canonical_params
 def design_params():
-    """build_design: HRF, drift, timing and condition settings."""
+    """build_design: HRF, drift, timing and condition settings (the TR is each run's own, from events.json)."""
     d = config["design"]
     return {"hrf": d["hrf"], "fir_bins": d["fir_bins"], "fir_bin_width_s": d["fir_bin_width_s"],
             "time_resolution_s": d["time_resolution_s"], "drift_basis": d["drift"]["basis"],
             "cutoff_s": d["drift"]["cutoff_s"], "legendre_order": d["drift"]["legendre_order"],
-            "repetition_time_s": config["acquisition"]["repetition_time_s"],
             "volume_time_fraction": config["acquisition"]["volume_time_fraction"],
             "conditions": list(config["events"]["conditions"]),
             "modulators": {k: list(v) for k, v in config["events"]["modulators"].items()}}

@@ -1,6 +1,7 @@
 rule select_confounds:
     input:
         confounds=confounds_file,
+        bold=bold_file,
     output:
         confounds=RUN_DIR + "/confounds.tsv",
         summary=RUN_DIR + "/confounds.json",

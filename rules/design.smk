@@ -1,6 +1,7 @@
 rule build_design:
     input:
         events=RUN_DIR + "/events.tsv",
+        events_summary=RUN_DIR + "/events.json",
         confounds=RUN_DIR + "/confounds.tsv",
         confounds_summary=RUN_DIR + "/confounds.json",
     output:

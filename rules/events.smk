@@ -2,6 +2,7 @@ rule validate_events:
     input:
         events=events_file,
         bold=bold_file,
+        bold_sidecar=bold_sidecar_file,
     output:
         events=RUN_DIR + "/events.tsv",
         summary=RUN_DIR + "/events.json",

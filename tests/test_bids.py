@@ -33,3 +33,17 @@ def test_pattern_errors_are_one_line(tmp_path):
         discover_runs(tmp_path, "sub-{subject}/{acq}_task-{task}_run-{run}.nii.gz")
     with pytest.raises(ConfigError, match="does not exist"):
         discover_runs(tmp_path / "nope", "sub-{subject}_task-{task}_run-{run}.nii.gz")
+
+
+def test_run_label_names_the_run_as_its_folder():
+    # reference: BIDS entity labels sub-<label>, ses-<label>, task-<label>, run-<index> (BIDS specification 1.9,
+    # "Entities", from memory); the run part equals the run folder name (RunKey.run_id)
+    from glmsteps.bids import run_label
+    key = RunKey("04", "beacon", "1")
+    assert run_label({"subject": "04", "run_id": key.run_id}) == "sub-04 task-beacon_run-1"
+    assert run_label({"subject": "04", "task": "beacon", "run": "1"}) == "sub-04 task-beacon_run-1"
+    with_session = RunKey("01", "go", "2", "b")
+    assert run_label({"subject": "01", "run_id": with_session.run_id}) == "sub-01 ses-b_task-go_run-2"
+    assert run_label({"subject": "01", "session": "b", "task": "go", "run": "2", "contrast": "x"}) == \
+        "sub-01 ses-b_task-go_run-2"
+    assert run_label({}) == ""

@@ -277,3 +277,44 @@ def test_no_warning_on_a_clean_run():
     with warnings.catch_warnings():
         warnings.simplefilter("error", GlmstepsWarning)
         prepare_confounds(censor_table(), source=SOURCE, **base_settings(demean=True, scale=True))
+
+
+# --------------------------------------------------------------------------- row count, units, motion summary
+
+def test_row_count_must_match_the_bold_volumes():
+    from glmsteps.confounds import check_row_count
+    table = pd.DataFrame({"a": np.zeros(119)})
+    with pytest.raises(ConfoundsError) as info:
+        check_row_count(table, 120, source=SOURCE, bold="sub-01_bold.nii.gz")
+    message = str(info.value)
+    assert "\n" not in message and message.startswith(SOURCE) and "119 data rows" in message
+    assert "120 volumes" in message and "inputs.confounds" in message
+    check_row_count(table, 119, source=SOURCE, bold="b")
+
+
+def test_motion_summary_against_numpy_by_hand():
+    from glmsteps.confounds import column_unit, motion_summary
+    rng = np.random.default_rng(8)
+    traces = pd.DataFrame({"move_x_mm": rng.normal(0, 0.3, 40), "turn_x_rad": rng.normal(0, 0.01, 40),
+                           "csf": rng.normal(500, 5, 40)})
+    traces.loc[1, "move_x_mm"] = 9.0  # a large value in a dropped volume is not summarised
+    fd = np.abs(rng.normal(0.2, 0.1, 40))
+    defined = np.ones(40, dtype=bool)
+    defined[0] = False  # n/a first row of a displacement measure
+    fd[0] = 0.0
+    got = motion_summary(traces, n_dropped=3, censor_values=fd, censor_column="fd", censor_defined=defined,
+                         censor_threshold=0.3)
+    assert [column_unit(c) for c in traces.columns] == ["mm", "rad", None]
+    assert set(got["columns"]) == {"move_x_mm", "turn_x_rad"} and got["volumes_summarised"] == 37
+    # reference: numpy, written out over volumes 3..39
+    for name, unit in (("move_x_mm", "mm"), ("turn_x_rad", "rad")):
+        kept = np.abs(traces[name].to_numpy()[3:])
+        assert got["columns"][name] == {"unit": unit, "max_abs": pytest.approx(kept.max(), rel=1e-15),
+                                        "max_abs_volume": 3 + int(np.argmax(kept))}
+    assert got["censor"]["mean"] == pytest.approx(fd[3:].mean(), rel=1e-14)
+    assert got["censor"]["max"] == fd[3:].max() and got["censor"]["max_volume"] == 3 + int(np.argmax(fd[3:]))
+    assert got["censor"]["n_above_threshold"] == int((fd[3:] > 0.3).sum())
+    # without dropped volumes the undefined first row is still left out of the mean
+    got0 = motion_summary(traces, n_dropped=0, censor_values=fd, censor_column="fd", censor_defined=defined)
+    assert got0["censor"]["mean"] == pytest.approx(fd[1:].mean(), rel=1e-14)
+    assert got0["censor"]["n_above_threshold"] is None

@@ -10,15 +10,15 @@ from scipy.linalg import toeplitz
 from glmsteps import contrasts
 from glmsteps.errors import ContrastError
 
-NAMES = ["A", "A__derivative", "B", "C__fir00", "C__fir01", "C__fir02", "A__x_rt", "drift_1", "intercept"]
+NAMES = ["A", "A__latency", "B", "C__fir00", "C__fir01", "C__fir02", "A__x_rt", "slow_01", "intercept"]
 CONDS = ["A", "A", "B", "C", "C", "C", "A", "", ""]
-BASIS = ["main", "derivative", "main", "fir00", "fir01", "fir02", "modulator", "", ""]
+BASIS = ["main", "latency", "main", "fir00", "fir01", "fir02", "modulator", "", ""]
 
 
 def test_t_matrix_condition_column_and_fir_mean():
     C = contrasts.contrast_matrix({"weights": {"A": 1, "B": -1}}, NAMES, CONDS, BASIS)
     np.testing.assert_array_equal(C, [[1, 0, -1, 0, 0, 0, 0, 0, 0]])
-    C = contrasts.contrast_matrix({"weights": {"C": 3, "A__derivative": 2}}, NAMES, CONDS, BASIS)
+    C = contrasts.contrast_matrix({"weights": {"C": 3, "A__latency": 2}}, NAMES, CONDS, BASIS)
     np.testing.assert_allclose(C, [[0, 2, 0, 1, 1, 1, 0, 0, 0]])
 
 
@@ -36,7 +36,7 @@ def test_unknown_key_is_one_line_error_naming_contrast_key_and_choices():
         contrasts.contrast_matrix({"weights": {"D": 1}}, NAMES, CONDS, BASIS, name="d_vs_rest")
     msg = str(info.value)
     assert "\n" not in msg
-    assert "'d_vs_rest'" in msg and "'D'" in msg and "['A', 'B', 'C']" in msg and "drift_1" in msg
+    assert "'d_vs_rest'" in msg and "'D'" in msg and "['A', 'B', 'C']" in msg and "slow_01" in msg
 
 
 def test_bad_specs_are_rejected():
@@ -158,7 +158,7 @@ def test_compute_contrast_not_estimable_gives_nan_maps_and_reason():
     X, Y = _simulate()
     X[:, 1] = 0.0
     beta, s2, cov, dof = _ols_fit(X, Y)
-    names, conds, basis = ["A", "B", "drift_1", "intercept"], ["A", "B", "", ""], ["main", "main", "", ""]
+    names, conds, basis = ["A", "B", "slow_01", "intercept"], ["A", "B", "", ""], ["main", "main", "", ""]
     spec = contrasts.parse_spec("a_vs_b", {"weights": {"A": 1, "B": -1}})
     out = contrasts.evaluate_contrast(spec, X, names, conds, basis, beta, s2, np.zeros(6, int), cov[None],
                                      np.full(6, dof))
@@ -171,3 +171,21 @@ def test_compute_contrast_not_estimable_gives_nan_maps_and_reason():
     # reference: statsmodels OLS t_test, one-sided p on the negative side
     tt = sm.OLS(Y[:, 0], X).fit().t_test([1, 0, 0, 0])
     assert out.maps["t"][0] == pytest.approx(float(tt.tvalue[0, 0]), rel=1e-9)
+
+
+def test_old_design_column_names_are_errors_naming_the_new_name():
+    # the basis and slow-signal columns were renamed (glmsteps.renames); an old name is never an alias
+    for old, new in (("A__derivative", "A__latency"), ("A__dispersion", "A__width"), ("drift_01", "slow_01")):
+        with pytest.raises(ContrastError) as info:
+            contrasts.contrast_matrix({"weights": {old: 1}}, NAMES, CONDS, BASIS, name="old")
+        msg = str(info.value)
+        assert "\n" not in msg and f"'{old}'" in msg and f"'{new}'" in msg
+
+
+def test_all_expands_latency_and_width_columns():
+    names = ["A", "A__latency", "A__width", "A__x_rt", "intercept"]
+    conds = ["A", "A", "A", "A", ""]
+    basis = ["main", "latency", "width", "modulator", ""]
+    C = contrasts.contrast_matrix({"rows": [{"A__all": 1}]}, names, conds, basis)
+    # worked by hand: one row per response column of A (main, latency, width), the modulator left out
+    np.testing.assert_array_equal(C, [[1, 0, 0, 0, 0], [0, 1, 0, 0, 0], [0, 0, 1, 0, 0]])

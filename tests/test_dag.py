@@ -74,7 +74,7 @@ def test_changing_one_contrast_reruns_only_its_chain(toy_results):
 
 def test_changing_the_hrf_refits_but_keeps_events_and_confounds(toy_results):
     config = copy.deepcopy(toy_results.config)
-    config["design"]["hrf"] = "double_gamma_derivative"
+    config["design"]["hrf"] = "double_gamma_latency"
     rules = _rules(_plan(toy_results, config))
     assert {"build_design", "fit", "contrast_t", "contrast_f", "combine_runs", "group_model"} <= rules
     assert not rules & {"validate_events", "select_confounds"}

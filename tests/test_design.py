@@ -199,18 +199,18 @@ def test_build_design_columns_roles_and_absent_condition() -> None:
     confounds = pd.DataFrame({"motion_x": rng.normal(size=90), "spike_0012": np.eye(90)[12],
                               "spike_0001": np.zeros(90)})
     with pytest.warns(GlmstepsWarning) as caught:
-        design = gd.build_design(small_events(), ft, hrf="double_gamma_derivative", confounds=confounds,
+        design = gd.build_design(small_events(), ft, hrf="double_gamma_latency", confounds=confounds,
                                  conditions=["stop", "go", "rest"], modulators={"go": ["rt"]},
                                  drift_basis="cosine", cutoff_s=100.0)
     texts = " | ".join(str(w.message) for w in caught)
     assert "'rest'" in texts and "spike_0001" in texts
     n_drift = gd.cosine_drift_count(90, 2.0, 100.0)
-    assert design.names == ("stop", "stop__derivative", "go", "go__derivative", "go__x_rt", "rest",
-                            "rest__derivative", "motion_x", "spike_0012",
-                            *[f"drift_{k:02d}" for k in range(1, n_drift + 1)], "intercept")
+    assert design.names == ("stop", "stop__latency", "go", "go__latency", "go__x_rt", "rest",
+                            "rest__latency", "motion_x", "spike_0012",
+                            *[f"slow_{k:02d}" for k in range(1, n_drift + 1)], "intercept")
     assert design.roles[:9] == ("interest",) * 4 + ("modulator",) + ("interest",) * 2 + ("confound", "spike")
     assert design.roles[-1] == "intercept" and set(design.roles[9:-1]) == {"drift"}
-    assert design.basis[:7] == ("main", "derivative", "main", "derivative", "modulator", "main", "derivative")
+    assert design.basis[:7] == ("main", "latency", "main", "latency", "modulator", "main", "latency")
     assert design.conditions[:7] == ("stop", "stop", "go", "go", "go", "rest", "rest")
     assert design.X.dtype == np.float64 and design.X.shape == (90, len(design.names))
     np.testing.assert_array_equal(design.X[:, 5:7], 0.0)
@@ -275,7 +275,7 @@ def diagnostic_design() -> gd.Design:
     ft = gd.frame_times(90, 2.0)
     rng = np.random.default_rng(11)
     confounds = pd.DataFrame({"motion_x": rng.normal(size=90), "motion_y": rng.normal(size=90)})
-    return gd.build_design(small_events(), ft, hrf="double_gamma_derivative", confounds=confounds,
+    return gd.build_design(small_events(), ft, hrf="double_gamma_latency", confounds=confounds,
                            modulators={"go": ["rt"]}, drift_basis="cosine", cutoff_s=128.0)
 
 

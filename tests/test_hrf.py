@@ -46,7 +46,7 @@ def test_canonical_peak_and_undershoot_times() -> None:
 
 
 def test_glover_peak_time() -> None:
-    kernels, _ = hrf.hrf_basis("glover", 0.1)
+    kernels, _ = hrf.hrf_basis("glover_1999", 0.1)
     t = np.arange(kernels.shape[0]) * 0.1
     # reference: Glover (1999): the response term peaks at n1 * t1 = 5.4 s (from memory); the undershoot
     # term's rising edge pulls the maximum earlier by a little
@@ -58,19 +58,19 @@ def test_kernels_match_scipy_gamma_pdf(dt_s: float) -> None:
     t = np.arange(int(round(32.0 / dt_s))) * dt_s
     ref = reference_double_gamma(t)
     scale = 1.0 / (ref.sum() * dt_s)  # unit-integral normalisation of the sampled kernel (documented choice)
-    kernels, labels = hrf.hrf_basis("double_gamma_dispersion", dt_s)
-    assert labels == ["main", "derivative", "dispersion"]
+    kernels, labels = hrf.hrf_basis("double_gamma_latency_width", dt_s)
+    assert labels == ["main", "latency", "width"]
     assert kernels.shape == (t.size, 3)
     np.testing.assert_allclose(kernels[:, 0], ref * scale, rtol=1e-10, atol=1e-13)
     # temporal derivative: finite difference w.r.t. onset with a 0.1 s delay
-    delay = hrf.DERIVATIVE_DELAY_S
+    delay = hrf.LATENCY_STEP_S
     ref_derivative = (reference_double_gamma(t - delay) - ref) * scale / delay
     np.testing.assert_allclose(kernels[:, 1], ref_derivative, rtol=1e-9, atol=1e-12)
     # dispersion derivative: finite difference w.r.t. the response dispersion (mean delay kept at 6 s)
-    step = hrf.DISPERSION_STEP_S
+    step = hrf.WIDTH_STEP_S
     ref_dispersion = (ref - reference_double_gamma(t, 1.0 + step)) * scale / step
     np.testing.assert_allclose(kernels[:, 2], ref_dispersion, rtol=1e-9, atol=1e-12)
-    glover, glabels = hrf.hrf_basis("glover", dt_s)
+    glover, glabels = hrf.hrf_basis("glover_1999", dt_s)
     g = reference_glover(t)
     assert glabels == ["main"]
     np.testing.assert_allclose(glover[:, 0], g / (g.sum() * dt_s), rtol=1e-10, atol=1e-13)
@@ -78,8 +78,8 @@ def test_kernels_match_scipy_gamma_pdf(dt_s: float) -> None:
 
 def test_temporal_derivative_is_finite_difference_of_the_kernel() -> None:
     # With dt equal to the derivative delay, shifting the sampled kernel by one sample is h(t - delay).
-    dt_s = hrf.DERIVATIVE_DELAY_S
-    kernels, _ = hrf.hrf_basis("double_gamma_derivative", dt_s)
+    dt_s = hrf.LATENCY_STEP_S
+    kernels, _ = hrf.hrf_basis("double_gamma_latency", dt_s)
     main = kernels[:, 0]
     shifted = np.concatenate([[0.0], main[:-1]])
     np.testing.assert_allclose(kernels[:, 1], (shifted - main) / dt_s, rtol=1e-9, atol=1e-12)
@@ -113,7 +113,7 @@ def test_main_kernel_has_unit_integral() -> None:
 
 
 def test_derivative_kernels_integrate_to_about_zero() -> None:
-    kernels, _ = hrf.hrf_basis("double_gamma_dispersion", 0.1)
+    kernels, _ = hrf.hrf_basis("double_gamma_latency_width", 0.1)
     # reference: the integral of a shifted density, or of a density of another dispersion, equals the
     # original's, so the finite differences integrate to ~0 up to the mass beyond the window.
     assert abs(kernels[:, 1].sum() * 0.1) < 1e-3

@@ -23,7 +23,7 @@ TR_S = 2.0
 def default_params(**changes: Any) -> dict[str, Any]:
     params: dict[str, Any] = {
         "hrf": "double_gamma", "fir_bins": 0, "fir_bin_width_s": 0.0, "time_resolution_s": 0.1,
-        "drift_basis": "cosine", "cutoff_s": 128.0, "legendre_order": 3, "repetition_time_s": TR_S,
+        "drift_basis": "cosine", "cutoff_s": 128.0, "legendre_order": 3,
         "volume_time_fraction": 0.5, "conditions": ["faces", "houses"], "modulators": {"faces": ["rating"]},
     }
     params.update(changes)
@@ -31,7 +31,7 @@ def default_params(**changes: Any) -> dict[str, Any]:
 
 
 def write_inputs(folder: Path, *, excluded: bool = False, extra_confounds: dict[str, np.ndarray] | None = None,
-                 n_rows: int = N_VOLUMES) -> dict[str, str]:
+                 n_rows: int = N_VOLUMES, tr_s: float = TR_S, n_bold: int = N_VOLUMES) -> dict[str, str]:
     folder.mkdir(parents=True, exist_ok=True)
     events = pd.DataFrame({
         "onset": [0.0, 14.0, 30.5, 47.0, 62.0, 80.0, 95.5, 110.0],
@@ -47,8 +47,12 @@ def write_inputs(folder: Path, *, excluded: bool = False, extra_confounds: dict[
     pd.DataFrame(confounds).to_csv(folder / "confounds.tsv", sep="\t", index=False)
     summary = {"n_volumes": N_VOLUMES, "drop_initial_volumes": DROP, "excluded": excluded, "censored": [1, 40]}
     (folder / "confounds.json").write_text(json.dumps(summary))
-    return {"events": str(folder / "events.tsv"), "confounds": str(folder / "confounds.tsv"),
-            "confounds_summary": str(folder / "confounds.json")}
+    acquisition = {"repetition_time_s": tr_s, "source": "sidecar", "source_file": "bold.json",
+                   "slice_timing_s": None, "configured_repetition_time_s": None}
+    (folder / "events.json").write_text(json.dumps({"repetition_time_s": tr_s, "n_volumes": n_bold,
+                                                    "acquisition": acquisition}))
+    return {"events": str(folder / "events.tsv"), "events_summary": str(folder / "events.json"),
+            "confounds": str(folder / "confounds.tsv"), "confounds_summary": str(folder / "confounds.json")}
 
 
 def outputs_in(folder: Path) -> dict[str, str]:
@@ -95,7 +99,8 @@ def test_job_writes_design_summary_and_figures(tmp_path: Path) -> None:
 
     record = summary["provenance"]
     assert record["step"] == "build_design"
-    for key in ("events", "confounds", "confounds_summary"):
+    assert summary["repetition_time_s"] == TR_S and summary["acquisition"]["source"] == "sidecar"
+    for key in ("events", "events_summary", "confounds", "confounds_summary"):
         assert record["inputs"][key]["sha256"] == sha256(inputs[key])
         assert record["inputs"][key]["lineage_hash"] == sha256(inputs[key])  # raw inputs: lineage = content
     # reference: sha256 of canonical JSON (sorted keys, no spaces), written out here with json.dumps
@@ -161,4 +166,24 @@ def test_fir_and_legendre_job(tmp_path: Path) -> None:
                                             drift_basis="legendre", legendre_order=2), {})
     summary = json.loads(Path(outputs["summary"]).read_text())
     assert summary["names"][:4] == ["faces__fir00", "faces__fir01", "faces__fir02", "faces__fir03"]
-    assert summary["names"][-3:] == ["drift_01", "drift_02", "intercept"]
+    assert summary["names"][-3:] == ["slow_01", "slow_02", "intercept"]
+
+
+def test_design_takes_the_tr_of_its_run_from_events_json(tmp_path: Path) -> None:
+    # two runs of one study at different TRs, one set of params: each design uses its own run's TR
+    for tr in (2.0, 0.8):
+        inputs = write_inputs(tmp_path / f"in{tr}", tr_s=tr)
+        outputs = outputs_in(tmp_path / f"out{tr}")
+        job.run(inputs, outputs, default_params(hrf="double_gamma", modulators={}), {"subject": "01"})
+        summary = json.loads(Path(outputs["summary"]).read_text())
+        # worked by hand: frame time of kept row j = (DROP + j + 0.5) x TR (volume_time_fraction 0.5)
+        expected = [(DROP + j + 0.5) * tr for j in range(N_VOLUMES - DROP)]
+        np.testing.assert_allclose(summary["frame_times_s"], expected, rtol=0, atol=1e-12)
+        assert summary["repetition_time_s"] == tr
+
+
+def test_volume_counts_of_events_and_confounds_summaries_must_agree(tmp_path: Path) -> None:
+    inputs = write_inputs(tmp_path / "in", n_bold=N_VOLUMES + 1)
+    with pytest.raises(DesignError, match=r"events\.json: the BOLD has 61 volumes but .*confounds\.json counts 60"):
+        job.run(inputs, outputs_in(tmp_path / "out"), default_params(), {})
+    assert not (tmp_path / "out").exists()

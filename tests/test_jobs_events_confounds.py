@@ -21,11 +21,12 @@ from glmsteps.provenance import read_record
 
 TR_S = 2.0
 N_VOLUMES = 30
-EVENTS_PARAMS = {"condition_column": "trial_type", "modulators": ["rt"], "repetition_time_s": TR_S}
+EVENTS_PARAMS = {"condition_column": "trial_type", "modulators": {"go": ["rt"], "stop": ["rt"]},
+                 "repetition_time_s": TR_S, "duplicate_events": "error", "missing_duration": "impulse"}
 CONFOUND_PARAMS = {"columns": ["trans_*", "rot_*"], "derivatives": True, "squares": True, "demean": True,
                    "scale": False, "censor": {"column": "framewise_displacement", "threshold": 0.5,
                                               "volumes_before": 1, "volumes_after": 2},
-                   "drop_initial_volumes": 2, "max_censored_fraction": 0.5}
+                   "drop_initial_volumes": 2, "max_censored_fraction": 0.5, "derivative_columns": []}
 WILDCARDS = {"subject": "01", "task": "demo", "run": "1"}
 
 
@@ -98,19 +99,22 @@ def test_events_job_lineage_follows_params(tmp_path):
     first, second, third = (event_outputs(tmp_path / name) for name in ("a", "b", "c"))
     events_job.run(inputs, first, EVENTS_PARAMS, WILDCARDS)
     events_job.run(inputs, second, EVENTS_PARAMS, WILDCARDS)
-    events_job.run(inputs, third, {**EVENTS_PARAMS, "modulators": []}, WILDCARDS)
+    events_job.run(inputs, third, {**EVENTS_PARAMS, "modulators": {}}, WILDCARDS)
     a, b, c = (read_record(o["events"]) for o in (first, second, third))
     assert a["lineage_hash"] == b["lineage_hash"]
     assert a["params_hash"] != c["params_hash"] and a["lineage_hash"] != c["lineage_hash"]
 
 
-def test_events_job_warns_on_header_tr_mismatch(tmp_path):
+def test_events_job_header_tr_mismatch_is_an_error(tmp_path):
+    # one TR policy: a configured TR is a check; a file stating another one (> 1 %) stops the run
     inputs = {"events": str(make_events(tmp_path / "events_in.tsv")),
               "bold": str(make_bold(tmp_path / "bold.nii.gz", tr_s=2.5))}
-    outputs = event_outputs(tmp_path)
-    events_job.run(inputs, outputs, EVENTS_PARAMS, WILDCARDS)
-    summary = json.loads(Path(outputs["summary"]).read_text())
-    assert any("header repetition time is 2.5 s" in w for w in summary["warnings"])
+    with pytest.raises(DataError) as info:
+        events_job.run(inputs, event_outputs(tmp_path), EVENTS_PARAMS, WILDCARDS)
+    message = str(info.value)
+    assert "\n" not in message and "bold.nii.gz" in message and "2.5 s" in message
+    assert "acquisition.repetition_time_s" in message
+    assert not (tmp_path / "out").exists()
 
 
 @pytest.mark.parametrize("bad", ["events", "bold", "params", "extra_param"])
@@ -147,7 +151,8 @@ def test_run_script_turns_user_error_into_one_line(tmp_path):
 # --------------------------------------------------------------------------- select_confounds
 
 def test_confounds_job_writes_table_summary_and_figure(tmp_path):
-    inputs = {"confounds": str(make_confounds(tmp_path / "confounds_in.tsv"))}
+    inputs = {"confounds": str(make_confounds(tmp_path / "confounds_in.tsv")),
+              "bold": str(make_bold(tmp_path / "bold.nii.gz"))}
     outputs = confound_outputs(tmp_path)
     confounds_job.run(inputs, outputs, CONFOUND_PARAMS, WILDCARDS)
 
@@ -169,11 +174,13 @@ def test_confounds_job_writes_table_summary_and_figure(tmp_path):
         assert record == summary["provenance"] and record["step"] == "select_confounds"
         assert len(record["params_hash"]) == 64 and len(record["lineage_hash"]) == 64
     assert summary["provenance"]["inputs"]["confounds"]["sha256"] == sha256(inputs["confounds"])
+    assert summary["provenance"]["inputs"]["bold"]["sha256"] == sha256(inputs["bold"])
 
 
 def test_confounds_job_records_exclusion(tmp_path):
     fd = [np.nan] + [0.9] * 20 + [0.1] * 9
-    inputs = {"confounds": str(make_confounds(tmp_path / "confounds_in.tsv", fd=fd))}
+    inputs = {"confounds": str(make_confounds(tmp_path / "confounds_in.tsv", fd=fd)),
+              "bold": str(make_bold(tmp_path / "bold.nii.gz"))}
     outputs = confound_outputs(tmp_path)
     confounds_job.run(inputs, outputs, CONFOUND_PARAMS, WILDCARDS)
     summary = json.loads(Path(outputs["summary"]).read_text())
@@ -196,7 +203,8 @@ def test_confounds_job_bad_input_writes_nothing(tmp_path, bad):
         params["censor"] = {"column": "framewise_displacement", "threshold": 0.5}
     expected = {"nan": ConfoundsError, "censor_column": ConfoundsError, "params": ConfigError}[bad]
     with pytest.raises(expected) as info:
-        confounds_job.run({"confounds": str(path)}, confound_outputs(tmp_path), params, WILDCARDS)
+        confounds_job.run({"confounds": str(path), "bold": str(make_bold(tmp_path / "bold.nii.gz"))},
+                          confound_outputs(tmp_path), params, WILDCARDS)
     message = str(info.value)
     assert "\n" not in message
     if bad == "nan":
@@ -207,10 +215,61 @@ def test_confounds_job_bad_input_writes_nothing(tmp_path, bad):
 
 
 def test_confounds_job_without_censoring(tmp_path):
-    inputs = {"confounds": str(make_confounds(tmp_path / "confounds_in.tsv"))}
+    inputs = {"confounds": str(make_confounds(tmp_path / "confounds_in.tsv")),
+              "bold": str(make_bold(tmp_path / "bold.nii.gz"))}
     outputs = confound_outputs(tmp_path)
     params = {**CONFOUND_PARAMS, "censor": None, "columns": ["csf"], "derivatives": False, "squares": False}
     confounds_job.run(inputs, outputs, params, WILDCARDS)
     summary = json.loads(Path(outputs["summary"]).read_text())
     assert summary["columns"] == ["csf"] and summary["censored_volumes"] == []
     assert summary["censored_fraction"] == 0.0
+
+
+def test_confounds_row_count_mismatch_names_the_confounds_file(tmp_path):
+    # the BOLD has one volume more than the table: caught here, naming the table (not at the fit)
+    path = make_confounds(tmp_path / "confounds_in.tsv")
+    bold = make_bold(tmp_path / "bold.nii.gz", shape=(2, 2, 2, N_VOLUMES + 1))
+    with pytest.raises(ConfoundsError) as info:
+        confounds_job.run({"confounds": str(path), "bold": str(bold)}, confound_outputs(tmp_path), CONFOUND_PARAMS,
+                          WILDCARDS)
+    message = str(info.value)
+    assert "\n" not in message and message.startswith(str(path))
+    assert f"{N_VOLUMES} data rows" in message and f"{N_VOLUMES + 1} volumes" in message
+    assert not (tmp_path / "out").exists()
+
+
+def test_confounds_figure_titles_scales_and_motion_summary(tmp_path, monkeypatch):
+    from scipy import stats
+
+    rng = np.random.default_rng(2)
+    table = pd.DataFrame({"move_x_mm": rng.normal(0, 0.2, N_VOLUMES), "move_y_mm": rng.normal(0, 0.2, N_VOLUMES),
+                          "turn_x_rad": rng.normal(0, 0.004, N_VOLUMES),
+                          "white_matter_mean": rng.normal(900, 4, N_VOLUMES),
+                          "framewise_displacement": [np.nan] + [0.1] * 9 + [0.8] + [0.1] * 19})
+    path = tmp_path / "confounds_in.tsv"
+    table.to_csv(path, sep="\t", index=False, na_rep="n/a")
+    figures = []
+    monkeypatch.setattr(confounds_job, "save_figure", lambda fig, out: figures.append(fig))
+    params = {**CONFOUND_PARAMS, "columns": ["move_*", "turn_*", "white_matter_mean"], "squares": False}
+    outputs = confound_outputs(tmp_path)
+    confounds_job.run({"confounds": str(path), "bold": str(make_bold(tmp_path / "bold.nii.gz"))}, outputs, params,
+                      {"subject": "04", "run_id": "task-beacon_run-1"})
+    axes = figures[0].axes
+    # the title reads like the design figure's: the run as named by its folder
+    assert axes[0].get_title() == "sub-04 task-beacon_run-1"
+    assert [ax.get_ylabel() for ax in axes] == ["motion (mm)", "motion (rad)", "other signals (z)",
+                                               "framewise_displacement"]
+    # motion in its own unit, unchanged; other signals z-scored over the kept volumes
+    np.testing.assert_array_equal(axes[0].lines[0].get_ydata(), table["move_x_mm"].to_numpy())
+    np.testing.assert_array_equal(axes[1].lines[0].get_ydata(), table["turn_x_rad"].to_numpy())
+    kept = table["white_matter_mean"].to_numpy()[2:]
+    # reference: scipy.stats.zscore with ddof=1 over the kept volumes (2 dropped)
+    np.testing.assert_allclose(axes[2].lines[0].get_ydata()[2:], stats.zscore(kept, ddof=1), rtol=1e-12)
+
+    motion = json.loads(Path(outputs["summary"]).read_text())["motion"]
+    assert set(motion["columns"]) == {"move_x_mm", "move_y_mm", "turn_x_rad"}
+    assert motion["columns"]["turn_x_rad"]["max_abs"] == pytest.approx(np.abs(table["turn_x_rad"][2:]).max())
+    fd = table["framewise_displacement"].to_numpy()[2:]
+    assert motion["censor"]["column"] == "framewise_displacement"
+    assert motion["censor"]["mean"] == pytest.approx(fd.mean()) and motion["censor"]["max"] == 0.8
+    assert motion["censor"]["n_above_threshold"] == 1

@@ -61,3 +61,22 @@ def test_noise_far_from_blobs_is_ar1_with_the_stated_rho(toy_data):
     r1 = (resid[1:] * resid[:-1]).sum(0) / (resid**2).sum(0)
     # OLS residual lag-1 estimates are biased down by about (1 + 3 rho)/n (common practice, from memory)
     assert abs(np.median(r1) - AR_RHO) < 0.08
+
+
+def test_every_bold_has_a_bids_sidecar_with_its_repetition_time(toy_data):
+    """The toy BOLDs carry their TR as BIDS does: RepetitionTime (s) in the JSON sidecar, consistent with
+    the header's pixdim[4] in seconds (reference: BIDS specification 1.9, "Magnetic Resonance Imaging";
+    header read with nibabel)."""
+    from glmsteps.volumes import bids_sidecar_of, read_bold_header, read_run_timing
+
+    bolds = sorted(toy_data.glob("sub-*/func/*_bold.nii.gz"))
+    assert len(bolds) == 24
+    for bold in bolds:
+        side = bids_sidecar_of(bold)
+        meta = json.loads(side.read_text())
+        img = nib.load(bold)
+        assert meta["RepetitionTime"] == REPETITION_TIME_S
+        assert img.header.get_xyzt_units()[1] == "sec"
+        assert abs(float(img.header.get_zooms()[3]) - meta["RepetitionTime"]) < 1e-6
+        timing = read_run_timing(read_bold_header(bold), side, None)
+        assert (timing.repetition_time_s, timing.source) == (REPETITION_TIME_S, "sidecar")

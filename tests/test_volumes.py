@@ -11,7 +11,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 from glmsteps import provenance
-from glmsteps.errors import DataError
+from glmsteps.errors import DataError, GlmstepsWarning
 from glmsteps.volumes import (bids_sidecar_of, check_grid, check_repetition_time, read_bold_header, read_mask,
                               stream_masked)
 
@@ -145,7 +145,9 @@ def test_repetition_time_checks(tmp_path: Path, series: np.ndarray) -> None:
     side = bids_sidecar_of(path)
     assert side.name == "sub-01_task-x_bold.json"
     side.write_text(json.dumps({"RepetitionTime": 1.5}))
-    with pytest.raises(DataError, match=r"RepetitionTime 1.5 s differs .* 2 s"):
+    # the sidecar wins over the header (warned), then fails the check against the expected 2 s
+    with pytest.warns(GlmstepsWarning, match="sidecar's value is used"), \
+            pytest.raises(DataError, match=r"RepetitionTime 1.5 s differs .* 2 s"):
         check_repetition_time(hdr, 2.0)
     side.write_text(json.dumps({"RepetitionTime": 2.0}))
     assert check_repetition_time(hdr, 2.0) == ["sidecar", "header"]

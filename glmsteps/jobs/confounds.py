@@ -1,11 +1,13 @@
 """Step ``select_confounds``: nuisance regressors and censoring of one run.
 
-Input ``confounds`` (TSV, one row per volume); params: the ``confounds``
-config section (``columns``, ``derivatives``, ``squares``, ``demean``,
-``scale``, ``censor``, ``drop_initial_volumes``, ``max_censored_fraction``,
-and optionally ``derivative_columns``); outputs ``confounds`` (TSV, every
-volume), ``summary`` (JSON) and ``figure`` (PNG). The TSV's and the PNG's
-sidecar is ``confounds.json``, the summary itself, so it is written first.
+Inputs ``confounds`` (TSV, one row per volume) and ``bold`` (NIfTI, header
+only: its volume count must equal the table's rows); params: the
+``confounds`` config section (``columns``, ``derivatives``, ``squares``,
+``demean``, ``scale``, ``censor``, ``drop_initial_volumes``,
+``max_censored_fraction``, ``derivative_columns``); outputs ``confounds``
+(TSV, every volume), ``summary`` (JSON, with a head-motion summary) and
+``figure`` (PNG). The TSV's and the PNG's sidecar is ``confounds.json``, the
+summary itself, so it is written first.
 """
 
 from __future__ import annotations
@@ -16,12 +18,14 @@ from typing import Any
 
 import pandas as pd
 
-from ..confounds import clean_confound_values, prepare_confounds
+from ..bids import run_label
+from ..confounds import check_row_count, clean_confound_values, motion_summary, prepare_confounds
 from ..errors import ConfigError, ConfoundsError
-from ..fileio import read_user_tsv, read_tsv, write_json, write_tsv
+from ..fileio import read_user_tsv, write_json, write_tsv
 from ..plots.confounds import plot_confounds
 from ..plots.style import save_figure
 from ..provenance import build_record, collect_warnings, sidecar_path, write_sidecar
+from ..volumes import read_bold_header
 
 STEP = "select_confounds"
 #: Params this step requires.
@@ -64,7 +68,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     Parameters
     ----------
     inputs : mapping
-        ``confounds`` (TSV path).
+        ``confounds`` (TSV path), ``bold`` (NIfTI path; header only).
     outputs : mapping
         ``confounds`` (TSV), ``summary`` (JSON), ``figure`` (PNG).
     params : mapping
@@ -81,8 +85,12 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
         Before anything is written.
     """
     _check_params(params)
-    source = str(inputs["confounds"])
+    if "bold" not in inputs:
+        raise ConfigError(f"step {STEP}: input 'bold' is missing; the rule must name the inputs confounds and bold")
+    source, bold_path = str(inputs["confounds"]), str(inputs["bold"])
+    n_volumes = read_bold_header(bold_path).shape[3]
     table = _read_confounds(source)
+    check_row_count(table, n_volumes, source=source, bold=bold_path)
     censor = params["censor"] or {}
     derivative_columns = list(params.get("derivative_columns") or [])
     with collect_warnings() as seen:
@@ -93,15 +101,19 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
             volumes_before=censor.get("volumes_before", 0), volumes_after=censor.get("volumes_after", 0),
             drop_initial_volumes=params["drop_initial_volumes"],
             max_censored_fraction=params["max_censored_fraction"], derivative_columns=derivative_columns)
-    record = build_record(STEP, params, {"confounds": source}, seen)
+    record = build_record(STEP, params, {"confounds": source, "bold": bold_path}, seen)
 
     traces = clean_confound_values(table[list(result.selected_columns)], source=source,
                                    derivative_columns=derivative_columns)
-    censor_values = None
+    censor_values = censor_defined = None
     if censor:
         censor_values = clean_confound_values(table[[censor["column"]]], source=source,
                                               derivative_columns=[censor["column"]])[censor["column"]].to_numpy()
-    title = " ".join(f"{k}-{v}" for k, v in dict(wildcards).items() if v) or Path(source).name
+        censor_defined = table[censor["column"]].notna().to_numpy()
+    motion = motion_summary(traces, n_dropped=result.n_dropped, censor_values=censor_values,
+                            censor_column=censor.get("column"), censor_defined=censor_defined,
+                            censor_threshold=censor.get("threshold"))
+    title = run_label(wildcards) or Path(source).name
     fig = plot_confounds(traces, censored=result.censored, n_dropped=result.n_dropped, censor_values=censor_values,
                          censor_name=str(censor.get("column", "")), censor_threshold=censor.get("threshold"),
                          title=title)
@@ -114,6 +126,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
         "drop_initial_volumes": int(result.n_dropped),
         "excluded": bool(result.excluded),
         "exclusion_reason": result.exclusion_reason,
+        "motion": motion,
         "warnings": list(seen),
         "provenance": record,
     }

@@ -2,14 +2,17 @@
 
 Inputs
     ``events`` (clean events TSV: onset, duration, condition, modulator columns),
+    ``events_summary`` (``events.json``: the run's ``repetition_time_s``, chosen
+    by the validate_events step, its ``acquisition`` timing and ``n_volumes``),
     ``confounds`` (TSV, one row per acquired volume: selected confound and
     ``spike_*`` columns), ``confounds_summary`` (JSON with ``n_volumes``,
     ``drop_initial_volumes``, ``excluded``).
 Params
     ``hrf``, ``fir_bins``, ``fir_bin_width_s``, ``time_resolution_s``,
-    ``drift_basis``, ``cutoff_s``, ``legendre_order``, ``repetition_time_s``,
+    ``drift_basis``, ``cutoff_s``, ``legendre_order``,
     ``volume_time_fraction``, ``conditions`` (list, may be empty), ``modulators``
-    (mapping condition -> list of columns).
+    (mapping condition -> list of columns). The TR is not a param: it is the
+    run's own, from ``events_summary``.
 Outputs
     ``design`` (TSV, one column per regressor, one row per kept volume),
     ``summary`` (JSON, the sidecar of ``design`` and ``figure``),
@@ -33,6 +36,7 @@ import numpy as np
 import pandas as pd
 
 from .. import provenance
+from ..bids import run_label
 from ..design import DRIFT_MODELS, build_design, design_diagnostics, frame_times
 from ..errors import ConfigError, DesignError
 from ..fileio import read_json, read_tsv, write_json, write_tsv
@@ -41,8 +45,15 @@ from ..plots.design import plot_correlation_matrix, draw_design_matrix
 
 STEP = "build_design"
 PARAM_KEYS: tuple[str, ...] = ("hrf", "fir_bins", "fir_bin_width_s", "time_resolution_s", "drift_basis", "cutoff_s",
-                               "legendre_order", "repetition_time_s", "volume_time_fraction", "conditions", "modulators")
-INPUT_KEYS: tuple[str, ...] = ("events", "confounds", "confounds_summary")
+                               "legendre_order", "volume_time_fraction", "conditions", "modulators")
+INPUT_KEYS: tuple[str, ...] = ("events", "events_summary", "confounds", "confounds_summary")
+#: Where each param comes from in the config (named in messages).
+CONFIG_KEYS: dict[str, str] = {
+    "hrf": "design.hrf", "fir_bins": "design.fir_bins", "fir_bin_width_s": "design.fir_bin_width_s",
+    "time_resolution_s": "design.time_resolution_s", "drift_basis": "design.drift.basis",
+    "cutoff_s": "design.drift.cutoff_s", "legendre_order": "design.drift.legendre_order",
+    "volume_time_fraction": "acquisition.volume_time_fraction", "conditions": "events.conditions",
+    "modulators": "events.modulators"}
 OUTPUT_KEYS: tuple[str, ...] = ("design", "summary", "figure", "correlation_figure")
 
 
@@ -51,9 +62,10 @@ def _number(params: Mapping[str, Any], key: str, *, positive: bool = False) -> f
     try:
         out = float(value)
     except (TypeError, ValueError):
-        raise ConfigError(f"{STEP} param {key}={value!r} is not a number; set design.{key} to a number") from None
+        raise ConfigError(f"{STEP} param {key}={value!r} is not a number; set {CONFIG_KEYS[key]} to a number") from None
     if not np.isfinite(out) or (positive and out <= 0):
-        raise ConfigError(f"{STEP} param {key}={value!r} must be a {'positive ' if positive else ''}finite number")
+        raise ConfigError(f"{STEP} param {key}={value!r} must be a {'positive ' if positive else ''}finite number; "
+                          f"set {CONFIG_KEYS[key]}")
     return out
 
 
@@ -64,42 +76,48 @@ def check_params(params: Mapping[str, Any]) -> dict[str, Any]:
         raise ConfigError(f"{STEP}: params {missing} are missing; the rule must pass {list(PARAM_KEYS)}")
     hrf = params["hrf"]
     if hrf not in HRF_MODELS:
-        raise ConfigError(f"{STEP}: hrf={hrf!r} is not known; use one of {', '.join(HRF_MODELS)}")
+        raise ConfigError(f"{STEP}: hrf={hrf!r} is not known; set design.hrf to one of {', '.join(HRF_MODELS)}")
     drift = params["drift_basis"]
     if drift not in DRIFT_MODELS:
-        raise ConfigError(f"{STEP}: drift_basis={drift!r} is not known; use one of {', '.join(DRIFT_MODELS)}")
+        raise ConfigError(f"{STEP}: drift_basis={drift!r} is not known; set design.drift.basis to one of "
+                          f"{', '.join(DRIFT_MODELS)}")
     dt = _number(params, "time_resolution_s", positive=True)
     if dt > 0.1:
-        raise ConfigError(f"{STEP}: time_resolution_s={dt} s is coarser than 0.1 s; set it to 0.1 or finer")
+        raise ConfigError(f"{STEP}: time_resolution_s={dt} s is coarser than 0.1 s; set design.time_resolution_s "
+                          "to 0.1 or finer")
     out: dict[str, Any] = {"hrf": hrf, "drift_basis": drift, "dt_s": dt,
-                           "repetition_time_s": _number(params, "repetition_time_s", positive=True),
                            "volume_time_fraction": _number(params, "volume_time_fraction")}
     if not 0.0 <= out["volume_time_fraction"] <= 1.0:
-        raise ConfigError(f"{STEP}: volume_time_fraction={params['volume_time_fraction']!r} must be between 0 and 1")
+        raise ConfigError(f"{STEP}: volume_time_fraction={params['volume_time_fraction']!r} must be between 0 and 1; "
+                          "set acquisition.volume_time_fraction")
     out["cutoff_s"] = _number(params, "cutoff_s", positive=True) if drift == "cosine" else 128.0
     order = params["legendre_order"]
     if drift == "legendre" and (isinstance(order, bool) or not isinstance(order, (int, np.integer)) or order < 1):
-        raise ConfigError(f"{STEP}: legendre_order={order!r} must be a whole number >= 1")
+        raise ConfigError(f"{STEP}: legendre_order={order!r} must be a whole number >= 1; "
+                          "set design.drift.legendre_order")
     out["legendre_order"] = int(order) if drift == "legendre" else 1
     if hrf == "fir":
         bins = params["fir_bins"]
         if isinstance(bins, bool) or not isinstance(bins, (int, np.integer)) or bins < 1:
-            raise ConfigError(f"{STEP}: fir_bins={bins!r} must be a whole number >= 1 for the fir model")
+            raise ConfigError(f"{STEP}: fir_bins={bins!r} must be a whole number >= 1 for the fir model; "
+                              "set design.fir_bins")
         out["fir_bins"] = int(bins)
         out["fir_bin_width_s"] = _number(params, "fir_bin_width_s", positive=True)
         if out["fir_bin_width_s"] < dt:
             raise ConfigError(f"{STEP}: fir_bin_width_s={out['fir_bin_width_s']} s is shorter than "
-                              f"time_resolution_s={dt} s; widen the bins")
+                              f"time_resolution_s={dt} s; widen the bins (design.fir_bin_width_s)")
     else:
         out["fir_bins"], out["fir_bin_width_s"] = 0, 0.0
     conditions = params["conditions"] or []
     if isinstance(conditions, str) or not all(isinstance(c, str) for c in conditions):
-        raise ConfigError(f"{STEP}: conditions={conditions!r} must be a list of condition names")
+        raise ConfigError(f"{STEP}: conditions={conditions!r} must be a list of condition names; "
+                          "set events.conditions")
     out["conditions"] = list(conditions)
     modulators = params["modulators"] or {}
     if not isinstance(modulators, Mapping) or not all(
             isinstance(v, (list, tuple)) and all(isinstance(m, str) for m in v) for v in modulators.values()):
-        raise ConfigError(f"{STEP}: modulators={modulators!r} must map each condition to a list of column names")
+        raise ConfigError(f"{STEP}: modulators={modulators!r} must map each condition to a list of column names; "
+                          "set events.modulators")
     out["modulators"] = {str(k): list(v) for k, v in modulators.items()}
     return out
 
@@ -122,10 +140,34 @@ def read_confounds_summary(path: str | os.PathLike[str]) -> tuple[int, int, bool
             raise DesignError(f"{path}: {key}={value!r}, expected a whole number >= 0; rerun select_confounds")
     if drop >= n - 1:
         raise DesignError(f"{path}: drop_initial_volumes={drop} leaves fewer than 2 of the {n} volumes; "
-                          "lower drop_initial_volumes")
+                          "lower confounds.drop_initial_volumes")
     if not isinstance(excluded, bool):
         raise DesignError(f"{path}: excluded={excluded!r}, expected true or false; rerun select_confounds")
     return n, drop, excluded
+
+
+def read_events_summary(path: str | os.PathLike[str]) -> tuple[float, int, dict[str, Any]]:
+    """The run's ``repetition_time_s``, ``n_volumes`` and ``acquisition`` record from ``events.json``.
+
+    Raises
+    ------
+    DesignError
+        Unreadable summary or a missing / invalid key.
+    """
+    try:
+        data = read_json(path)
+    except (OSError, json.JSONDecodeError) as exc:
+        raise DesignError(f"{path}: cannot read the events summary ({exc}); rerun validate_events") from exc
+    if not isinstance(data, dict) or not all(k in data for k in ("repetition_time_s", "n_volumes", "acquisition")):
+        raise DesignError(f"{path}: expected a JSON object with repetition_time_s, n_volumes and acquisition; "
+                          "rerun validate_events")
+    tr, n = data["repetition_time_s"], data["n_volumes"]
+    if isinstance(tr, bool) or not isinstance(tr, (int, float)) or not np.isfinite(tr) or tr <= 0:
+        raise DesignError(f"{path}: repetition_time_s={tr!r}, expected a positive number of seconds; "
+                          "rerun validate_events")
+    if isinstance(n, bool) or not isinstance(n, int) or n < 1:
+        raise DesignError(f"{path}: n_volumes={n!r}, expected a whole number >= 1; rerun validate_events")
+    return float(tr), n, dict(data["acquisition"])
 
 
 def read_confounds(path: str | os.PathLike[str], n_volumes: int) -> pd.DataFrame:
@@ -168,10 +210,15 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
             raise ConfigError(f"{STEP}: named {group}(s) {missing} are missing; the rule must name {list(keys)}")
     settings = check_params(params)
     n_total, drop, excluded = read_confounds_summary(inputs["confounds_summary"])
+    tr_s, n_bold, acquisition = read_events_summary(inputs["events_summary"])
+    if n_bold != n_total:
+        raise DesignError(f"{inputs['events_summary']}: the BOLD has {n_bold} volumes but "
+                          f"{inputs['confounds_summary']} counts {n_total}; rerun validate_events and "
+                          "select_confounds on this run")
     events = read_events(inputs["events"])
     confounds = read_confounds(inputs["confounds"], n_total).iloc[drop:].reset_index(drop=True)
     n_kept = n_total - drop
-    times = frame_times(n_kept, settings["repetition_time_s"], settings["volume_time_fraction"], first_volume=drop)
+    times = frame_times(n_kept, tr_s, settings["volume_time_fraction"], first_volume=drop)
 
     with provenance.collect_warnings() as seen:
         try:
@@ -188,12 +235,10 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     summary = {
         "names": list(design.names), "roles": list(design.roles), "conditions": list(design.conditions),
         "basis": list(design.basis), "first_volume": drop, "n_volumes": n_kept, "n_volumes_acquired": n_total,
-        "frame_times_s": design.frame_times_s.tolist(), "diagnostics": diagnostics, "excluded": excluded,
+        "repetition_time_s": tr_s, "acquisition": acquisition, "frame_times_s": design.frame_times_s.tolist(), "diagnostics": diagnostics, "excluded": excluded,
         "warnings": list(seen), "provenance": record,
     }
-    prefixes = {"subject": "sub", "session": "ses"}
-    title = " ".join(f"{prefixes.get(k, k)}-{v}" if k != "run_id" else str(v)
-                     for k, v in wildcards.items() if v) or "design matrix"
+    title = run_label(wildcards) or "design matrix"
     corr = np.array([[np.nan if v is None else v for v in row] for row in diagnostics["correlation"]["values"]],
                     dtype=np.float64).reshape(len(design.names), len(design.names))
 
