@@ -56,13 +56,14 @@ from __future__ import annotations
 from typing import Literal
 
 from .autocorrelation import (MAX_ABS_RHO, MAX_AR_ORDER, MIN_BIAS_MATRIX_RCOND, MIN_DOF_PER_AR_COEFFICIENT,
-                              Ar1Correction, autocorrelation_of_ar, check_ar_order, compute_ar1_correction,
-                              compute_bias_matrix, compute_lag_products, correct_ar1, correct_autocorrelation,
-                              levinson_durbin, raw_autocorrelation)
+                              REFERENCE_GROUP_WIDTH, REFERENCE_SMOOTHING_FWHM_MM, AutocorrelationEstimate,
+                              ar_autocorrelation, autocorrelation_of_ar, check_ar_order, compute_lag_moments,
+                              compute_lag_products, compute_ratio_moments, estimate_autocorrelation,
+                              extend_autocorrelation, levinson_durbin, truncated_autocorrelation)
 from .ols import (DesignFactors, FloatArray, OlsBlock, ScalingMethod, compute_residuals, compute_scale_factors,
-                  fit_ols, multiply_columns, prepare_design)
-from .smoothing import convolve_axis, gaussian_kernel, smooth_within_mask
-from .whitening import (Ar1Summary, NoiseBins, WhitenedBlock, assign_bins, fit_ar1_block, fit_ar1_summary,
+                  apply_group_matrices, fit_ols, multiply_columns, prepare_design)
+from .smoothing import convolve_axis, gaussian_kernel, smooth_voxel_values, smooth_within_mask
+from .whitening import (Ar1Summary, NoiseBins, WhitenedBlock, assign_bins, bin_means, fit_ar1_block, fit_ar1_summary,
                         fit_arp_block, prepare_bins, summarise_residuals, whiten_ar, whitened_covariance)
 
 NoiseModel = Literal["ols", "ar1", "arp"]

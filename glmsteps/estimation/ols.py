@@ -43,17 +43,50 @@ def multiply_columns(A: npt.ArrayLike, B: npt.NDArray[np.floating]) -> FloatArra
     BLAS matrix products use different micro-kernels for the last, partial
     block of columns, so a column's value can change in the last bit with the
     number of columns. Padding the column count to a multiple of 64 makes every
-    column go through a full block, which makes chunked and whole-array results
-    identical (checked in ``tests/test_estimation.py``).
+    column go through a full block, and giving BLAS ``B`` in C order always
+    keeps it on the same kernel (a gathered, column-major ``B`` takes another),
+    which makes chunked and whole-array results identical (checked in
+    ``tests/test_estimation.py`` and ``tests/test_fitting.py``).
     """
     A = np.asarray(A, dtype=np.float64)
     n = B.shape[1]
     padded = -(-n // _COLUMN_BLOCK) * _COLUMN_BLOCK
     if padded == n:
-        return A @ np.asarray(B, dtype=np.float64)
+        # C order always: BLAS takes another kernel (other rounding) for a column-major operand
+        return A @ np.ascontiguousarray(B, dtype=np.float64)
     Bp = np.zeros((B.shape[0], padded), dtype=np.float64)
     Bp[:, :n] = B
     return (A @ Bp)[:, :n]
+
+
+def apply_group_matrices(matrices: FloatArray, group: npt.NDArray[np.integer], Z: FloatArray) -> FloatArray:
+    """``out[:, v] = matrices[group[v]] @ Z[:, v]`` with element-wise arithmetic (chunk independent).
+
+    Parameters
+    ----------
+    matrices : ndarray, shape (n_groups, m, k)
+    group : ndarray of int, shape (n_voxels,)
+    Z : ndarray, shape (k, n_voxels)
+
+    Returns
+    -------
+    ndarray, shape (m, n_voxels), float64
+
+    Notes
+    -----
+    Group by group, so that each group's matrix is broadcast instead of
+    gathered for every voxel (the same products and sums, in the same order,
+    as a per-voxel matrix-vector product, whatever the other voxels).
+    """
+    out = np.empty((matrices.shape[1], Z.shape[1]))
+    for b in np.unique(group):
+        cols = np.flatnonzero(group == b)
+        Zb = Z[:, cols]
+        acc = np.zeros((matrices.shape[1], cols.size))
+        for j in range(matrices.shape[2]):
+            acc += matrices[b, :, j, None] * Zb[j]
+        out[:, cols] = acc
+    return out
 
 
 # ---------------------------------------------------------------------------
@@ -125,6 +158,9 @@ class DesignFactors:
     lag_design : ndarray, shape (n_scans, n_regressors)
         ``D1 @ X`` with ``D1`` the symmetric lag-1 matrix (ones on both first
         off-diagonals).
+    column_basis : ndarray, shape (n_scans, rank)
+        Orthonormal basis of the columns of ``X`` (left singular vectors), so
+        that the residual-forming matrix is ``I - column_basis column_basis'``.
     """
 
     X: FloatArray
@@ -135,6 +171,7 @@ class DesignFactors:
     spike_columns: npt.NDArray[np.bool_]
     spike_rows: npt.NDArray[np.int64]
     lag_design: FloatArray
+    column_basis: FloatArray
 
 
 def prepare_design(X: npt.ArrayLike, roles: Sequence[str]) -> DesignFactors:
@@ -191,7 +228,8 @@ def prepare_design(X: npt.ArrayLike, roles: Sequence[str]) -> DesignFactors:
     lag[1:] += X[:-1]
     lag[:-1] += X[1:]
     return DesignFactors(X=X, pinv=pinv, rank=rank, dof=dof, censored=censored, spike_columns=spike_columns,
-                         spike_rows=np.asarray(spike_rows, dtype=np.int64), lag_design=lag)
+                         spike_rows=np.asarray(spike_rows, dtype=np.int64), lag_design=lag,
+                         column_basis=np.ascontiguousarray(U[:, keep]))
 
 
 # ---------------------------------------------------------------------------

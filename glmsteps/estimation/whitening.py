@@ -12,31 +12,44 @@ import numpy as np
 import numpy.typing as npt
 
 from .autocorrelation import MAX_ABS_RHO, autocorrelation_of_ar, levinson_durbin
-from .ols import DesignFactors, FloatArray, OlsBlock, multiply_columns
+from .ols import DesignFactors, FloatArray, OlsBlock, apply_group_matrices, multiply_columns
 
 
-def assign_bins(rho: npt.ArrayLike, bin_width: float = 0.01) -> tuple[npt.NDArray[np.int32], FloatArray]:
-    """Round lag-1 coefficients to bins.
+def assign_bins(rho: npt.ArrayLike, bin_width: float = 0.01,
+                classes: npt.ArrayLike | None = None) -> tuple[npt.NDArray[np.int32], FloatArray]:
+    """Round lag-1 autocorrelations to bins, within tissue classes.
 
     Parameters
     ----------
     rho : array_like, shape (n_voxels,)
     bin_width : float
-        Bin width (coefficient units, default 0.01).
+        Bin width (autocorrelation units, default 0.01).
+    classes : array_like of int, shape (n_voxels,), optional
+        Tissue class of each voxel; voxels of different classes never share a
+        bin.
 
     Returns
     -------
     bin_index : ndarray of int32, shape (n_voxels,)
         Index into ``bin_rho``.
     bin_rho : ndarray, shape (n_bins,), float64
-        Sorted bin centres ``k * bin_width``, within ``+-MAX_ABS_RHO``.
+        Bin centres ``k * bin_width`` within ``+-MAX_ABS_RHO``, sorted by class
+        then centre.
     """
     rho = np.clip(np.asarray(rho, dtype=np.float64), -MAX_ABS_RHO, MAX_ABS_RHO)
-    k = np.round(rho / bin_width).astype(np.int64)
     kmax = int(math.floor(MAX_ABS_RHO / bin_width + 1e-9))
-    k = np.clip(k, -kmax, kmax)
-    keys, index = np.unique(k, return_inverse=True)
-    return index.astype(np.int32).reshape(rho.shape), keys * bin_width
+    k = np.clip(np.round(rho / bin_width).astype(np.int64), -kmax, kmax)
+    key = k if classes is None else np.asarray(classes, dtype=np.int64) * (2 * kmax + 1) + k
+    keys, index = np.unique(key, return_inverse=True)
+    centres = (keys if classes is None else (keys + kmax) % (2 * kmax + 1) - kmax) * bin_width
+    return index.astype(np.int32).reshape(rho.shape), centres.astype(np.float64)
+
+
+def bin_means(values: npt.NDArray[np.floating], bin_index: npt.NDArray[np.integer], n_bins: int) -> FloatArray:
+    """Mean of each row of ``values`` (shape (k, n_voxels)) over each bin, shape (n_bins, k)."""
+    values = np.atleast_2d(np.asarray(values, dtype=np.float64))
+    counts = np.maximum(np.bincount(bin_index, minlength=n_bins), 1).astype(np.float64)
+    return np.stack([np.bincount(bin_index, weights=row, minlength=n_bins) / counts for row in values], axis=1)
 
 
 def whiten_ar(Z: npt.NDArray[np.floating], phi: npt.ArrayLike, innovation_variance: float,
@@ -202,23 +215,6 @@ def _settle_spikes(design: DesignFactors, y_censored: FloatArray, beta: FloatArr
     beta[design.spike_columns] = y_censored - multiply_columns(design.X[np.ix_(rows, other)], beta[other])
 
 
-def _apply_bin_matrices(matrices: FloatArray, bin_index: npt.NDArray[np.integer], Z: FloatArray) -> FloatArray:
-    """``out[:, v] = matrices[bin_index[v]] @ Z[:, v]`` with element-wise arithmetic (chunk independent).
-
-    Bin by bin, so that each bin's matrix is broadcast instead of gathered for every voxel
-    (the same products and sums, in the same order, as a per-voxel matrix-vector product).
-    """
-    out = np.empty((matrices.shape[1], Z.shape[1]))
-    for b in np.unique(bin_index):
-        cols = np.flatnonzero(bin_index == b)
-        Zb = Z[:, cols]
-        acc = np.zeros((matrices.shape[1], cols.size))
-        for j in range(matrices.shape[2]):
-            acc += matrices[b, :, j, None] * Zb[j]
-        out[:, cols] = acc
-    return out
-
-
 @dataclass(frozen=True)
 class Ar1Summary:
     """What the AR(1) refit needs from a block's OLS residuals.
@@ -310,7 +306,7 @@ def fit_ar1_summary(design: DesignFactors, beta_ols: npt.NDArray[np.floating], s
     z -= rho * np.asarray(summary.lag_design_products, dtype=np.float64)
     eqe = ((1.0 + rho2) * summary.e0 - rho2 * (summary.e_first ** 2 + summary.e_last ** 2)
            - 2.0 * rho * summary.e1)
-    delta = _apply_bin_matrices(bins.covariance, bin_index, z)
+    delta = apply_group_matrices(bins.covariance, bin_index, z)
     rss = eqe - np.einsum("pv,pv->v", z, delta)
     beta = np.asarray(beta_ols, dtype=np.float64) + delta
     _settle_spikes(design, np.asarray(y_censored, dtype=np.float64), beta)
