@@ -15,8 +15,7 @@ Noise models (``NoiseSettings.model``):
 ``ols``
     no autocorrelation model.
 ``ar1``
-    AR(1): the lag-1 autocorrelation of each voxel, estimated with the full
-    bias correction (:func:`glmsteps.estimation.estimate_autocorrelation`),
+    AR(1): the lag-1 autocorrelation of each voxel (:func:`estimate_noise`),
     smoothed, rounded to bins; each bin is refitted with the exact AR(1)
     whitening from the first pass's sufficient statistics (no second pass
     over the data).
@@ -25,10 +24,10 @@ Noise models (``NoiseSettings.model``):
     voxels are binned on the smoothed lag-1 value, each bin's model is the
     mean of its voxels' smoothed autocorrelations (Yule-Walker AR(p)
     coefficients), and the data are refitted bin by bin with the exact AR(p)
-    whitening (a second pass over the data).
+    whitening (a second pass over the data, which stays in memory).
 
-With tissue classes, smoothing and bins never mix voxels of different
-classes.
+With tissue classes, the reference groups of the estimate, the smoothing and
+the bins never mix voxels of different classes.
 """
 
 from __future__ import annotations
@@ -245,8 +244,9 @@ def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], col
     def block(s: int) -> tuple[slice, npt.NDArray[np.float64]]:
         sl = slice(s, min(s + chunk, v))
         cols = columns[sl]
-        # nearly always the fitted columns of a chunk are contiguous: slice instead of gathering
-        data = Y[:, cols[0]:cols[-1] + 1] if cols[-1] - cols[0] + 1 == cols.size else Y[:, cols]
+        # nearly always the fitted columns of a chunk are contiguous: slice instead of gathering (np.take
+        # keeps C order, which multiply_columns needs to stay on one BLAS kernel)
+        data = Y[:, cols[0]:cols[-1] + 1] if cols[-1] - cols[0] + 1 == cols.size else np.take(Y, cols, axis=1)
         return sl, np.multiply(data, factors[sl], dtype=np.float64)
 
     lag = np.empty((max_lag + 1, v))

@@ -105,9 +105,10 @@ def true_acf(name: str, n_lags: int) -> np.ndarray:
     return r
 
 
-def noise_settings(model: str, design: est.DesignFactors, fwhm_mm: float | None = None) -> fitting.NoiseSettings:
+def noise_settings(model: str, design: est.DesignFactors, fwhm_mm: float | None = None,
+                   order: int | None = None) -> fitting.NoiseSettings:
     """The fit step's settings for a model (its defaults: ``glmsteps.jobs.fit.DEFAULTS``)."""
-    order = est.check_ar_order(design, DEFAULTS["ar_order"]) if model == "arp" else 1
+    order = est.check_ar_order(design, order or DEFAULTS["ar_order"]) if model == "arp" else 1
     fwhm = DEFAULTS["ar_smoothing_fwhm_mm"] if fwhm_mm is None else fwhm_mm
     return fitting.NoiseSettings(model=model, order=order, smoothing_fwhm_mm=fwhm, bin_width=DEFAULTS["ar_bin_width"])
 
@@ -122,13 +123,13 @@ class CellResult:
 
 
 def fit_cell(Y: np.ndarray, X: np.ndarray, roles: list[str], model: str, grid: tuple[int, int, int],
-             fwhm_mm: float | None = None, classes: np.ndarray | None = None) -> CellResult:
+             fwhm_mm: float | None = None, classes: np.ndarray | None = None, order: int | None = None) -> CellResult:
     """Fit a simulated grid as the fit step does and return the t maps of A and A - B."""
     design = est.prepare_design(X, roles)
     v = Y.shape[1]
     vgrid = fitting.VoxelGrid(shape=grid, flat_index=np.arange(v), voxel_size_mm=np.full(3, VOXEL_MM),
                               classes=classes)
-    vf = fitting.fit_voxels(Y, np.arange(v), np.ones(v), design, noise_settings(model, design, fwhm_mm), 4096,
+    vf = fitting.fit_voxels(Y, np.arange(v), np.ones(v), design, noise_settings(model, design, fwhm_mm, order), 4096,
                             vgrid)
     p = X.shape[1]
     t = {}

@@ -1,12 +1,22 @@
 """Voxelwise GLM estimation: scaling, OLS, autocorrelation estimates, prewhitened refits.
 
+A package along the four sections of the maths: :mod:`.ols` (deterministic
+products over voxels, scaling, design factors, OLS), :mod:`.autocorrelation`
+(residual lag products, Worsley's moments taken at every lag, the ratio and
+curvature corrections, Yule-Walker), :mod:`.smoothing` (normalised Gaussian
+smoothing within the mask and within tissue classes) and :mod:`.whitening`
+(bins, exact AR whitening, the prewhitened refit). Every public name is
+re-exported here (``from glmsteps import estimation as est``).
+
 Pure maths: arrays in, arrays out, no file access. Every function that touches
 voxel data takes a *block* of voxels (``Y (n_scans, n_voxels)``); the loop over
-blocks (chunks) lives in the I/O layer (``glmsteps.jobs.fit``). Results do not
-depend on how the voxels are split into blocks: matrix products over voxels go
-through :func:`multiply_columns`, which pads the voxel axis to a fixed multiple
-so that the BLAS kernel computing each column is always the same, and per-voxel
-reductions run along the scan axis only.
+blocks (chunks) lives in :mod:`glmsteps.fitting`. Results do not depend on how
+the voxels are split into blocks: matrix products over voxels go through
+:func:`multiply_columns`, which pads the voxel axis to a fixed multiple and
+hands BLAS a C-ordered operand so that the kernel computing each column is
+always the same, per-voxel small matrix products are element-wise
+(:func:`apply_group_matrices`), and per-voxel reductions run along the scan
+axis only.
 
 The fitting model, per voxel, is ``y = X beta + e`` with ``e`` zero-mean and
 correlation matrix ``V``:
@@ -14,18 +24,15 @@ correlation matrix ``V``:
 ``ols``
     ``V = I``; ordinary least squares through the pseudo-inverse of ``X``.
 ``ar1``
-    ``V`` of a stationary AR(1) process with coefficient ``rho``. ``rho`` is
-    estimated per voxel from the OLS residuals with Worsley's bias correction
-    (the lag-1/lag-0 residual ratio mapped through its expectation under AR(1)
-    noise for this design, :func:`compute_ar1_correction`),
-    optionally smoothed within the mask, rounded to bins of width 0.01, and
-    each bin is refitted with the exact AR(1) whitening (Prais-Winsten, the
-    first scan kept).
+    ``V`` of a stationary AR(1) process. The lag-1 autocorrelation of each
+    voxel is estimated from its OLS residuals (:func:`estimate_autocorrelation`),
+    smoothed, rounded to bins, and each bin is refitted with the exact AR(1)
+    whitening (Prais-Winsten, the first scan kept) from sufficient statistics.
 ``arp``
-    AR(q), q <= 4, from the residual autocorrelations corrected with Worsley's
-    linear system (:func:`compute_bias_matrix`, first-order in the lags) by
-    Yule-Walker (Levinson-Durbin), binned on the lag-1 autocorrelation, and
-    refitted with the exact AR(q) whitening.
+    AR(p), p <= ``MAX_AR_ORDER``: autocorrelations at lags 1..p estimated the
+    same way, smoothed, binned on lag 1 (each bin's model the mean of its
+    voxels' autocorrelations), Yule-Walker coefficients (Levinson-Durbin), and
+    each bin refitted with the exact AR(p) whitening.
 
 Censored volumes
     A censored volume carries its own regressor (role ``spike``: a column that
@@ -43,9 +50,8 @@ Censored volumes
     computed from the residual-forming matrix of the full design, indicator
     columns included) accounts for the missing products. After the fit, the
     coefficient of each indicator column is set to the value that makes the
-    residual at its volume zero (``y_k - x_k' beta`` over the other columns);
-    :func:`compute_residuals` returns exactly zero there. Indicator
-    coefficients are nuisance values, not for inference.
+    residual at its volume zero (``y_k - x_k' beta`` over the other columns).
+    Indicator coefficients are nuisance values, not for inference.
 
 Dropped initial volumes are simply absent: ``X`` and ``Y`` start at the first
 kept volume, and the whitening treats that volume as the start of the series.
@@ -60,9 +66,9 @@ from .autocorrelation import (MAX_ABS_RHO, MAX_AR_ORDER, MIN_BIAS_MATRIX_RCOND, 
                               ar_autocorrelation, autocorrelation_of_ar, check_ar_order, compute_lag_moments,
                               compute_lag_products, compute_ratio_moments, estimate_autocorrelation,
                               extend_autocorrelation, levinson_durbin, truncated_autocorrelation)
-from .ols import (DesignFactors, FloatArray, OlsBlock, ScalingMethod, compute_residuals, compute_scale_factors,
-                  apply_group_matrices, fit_ols, multiply_columns, prepare_design)
-from .smoothing import convolve_axis, gaussian_kernel, smooth_voxel_values, smooth_within_mask
+from .ols import (DesignFactors, FloatArray, OlsBlock, ScalingMethod, apply_group_matrices, compute_scale_factors,
+                  fit_ols, multiply_columns, prepare_design)
+from .smoothing import convolve_axis, gaussian_kernel, smooth_voxel_values
 from .whitening import (Ar1Summary, NoiseBins, WhitenedBlock, assign_bins, bin_means, fit_ar1_block, fit_ar1_summary,
                         fit_arp_block, prepare_bins, summarise_residuals, whiten_ar, whitened_covariance)
 

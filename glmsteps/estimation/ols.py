@@ -280,23 +280,3 @@ def fit_ols(design: DesignFactors, Y: npt.NDArray[np.floating]) -> OlsBlock:
     residuals[design.censored] = 0.0
     rss = np.einsum("tv,tv->v", residuals, residuals)
     return OlsBlock(beta=beta, residuals=residuals, residual_variance=rss / design.dof)
-
-
-def compute_residuals(design: DesignFactors, Y: npt.NDArray[np.floating],
-                      beta: npt.NDArray[np.floating]) -> FloatArray:
-    """Residuals ``y - X beta`` of a block, exactly zero at censored volumes.
-
-    Parameters
-    ----------
-    design : DesignFactors
-    Y : ndarray, shape (n_scans, n_voxels)
-    beta : ndarray, shape (n_regressors, n_voxels)
-
-    Returns
-    -------
-    ndarray, shape (n_scans, n_voxels), float64
-    """
-    res = np.asarray(Y, dtype=np.float64) - multiply_columns(design.X, np.asarray(beta, dtype=np.float64))
-    res[design.censored] = 0.0
-    return res
-

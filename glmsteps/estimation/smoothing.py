@@ -1,4 +1,4 @@
-"""Spatial smoothing of AR estimates within a mask (normalised convolution).
+"""Spatial smoothing of AR estimates within the mask and within tissue classes (normalised convolution).
 
 Pure maths: arrays in, arrays out, no file access (see :mod:`glmsteps.estimation`).
 """
@@ -57,50 +57,6 @@ def convolve_axis(values: FloatArray, weights: FloatArray, axis: int) -> FloatAr
     return np.moveaxis(out, 0, axis)
 
 
-def smooth_within_mask(values: npt.NDArray[np.floating], mask: npt.NDArray[np.bool_], fwhm_mm: float,
-                       voxel_size_mm: npt.ArrayLike) -> FloatArray:
-    """Gaussian smoothing restricted to a mask (normalised convolution).
-
-    Parameters
-    ----------
-    values : ndarray, shape (nx, ny, nz)
-        Values; only those inside ``mask`` are used.
-    mask : ndarray of bool, shape (nx, ny, nz)
-    fwhm_mm : float
-        Full width at half maximum of the kernel (mm); 0 returns the input.
-    voxel_size_mm : array_like, shape (3,)
-
-    Returns
-    -------
-    ndarray, shape (nx, ny, nz), float64
-        Smoothed values inside the mask, 0 outside.
-
-    Notes
-    -----
-    ``s = G * (m v) / G * m`` with ``G`` the Gaussian kernel, ``sigma = FWHM /
-    sqrt(8 ln 2)``, truncated at 4 sigma: normalised convolution (Knutsson &
-    Westin (1993), "Normalized and differential convolution", CVPR), so that
-    values near the mask edge are averaged over the mask only and not pulled
-    toward zero. The separable convolution is done with numpy slices: the fit
-    job then needs no scipy, whose import alone (0.3-0.4 s) weighed on small
-    runs (``tests/benchmarks/README.md``).
-    """
-    m = np.asarray(mask, dtype=bool)
-    vals = np.where(m, np.asarray(values, dtype=np.float64), 0.0)
-    if fwhm_mm <= 0:
-        return vals
-    sigma = fwhm_mm / math.sqrt(8.0 * math.log(2.0)) / np.asarray(voxel_size_mm, dtype=np.float64)
-    den = m.astype(np.float64)
-    for axis in range(m.ndim):
-        w = gaussian_kernel(float(sigma[axis]))
-        vals = convolve_axis(vals, w, axis)
-        den = convolve_axis(den, w, axis)
-    np.divide(vals, den, out=vals, where=m & (den > 0))
-    vals[~m] = 0.0
-    return vals
-
-
-
 def smooth_voxel_values(values: npt.NDArray[np.floating], flat_index: npt.NDArray[np.integer],
                         shape: tuple[int, int, int], fwhm_mm: float, voxel_size_mm: npt.ArrayLike,
                         classes: npt.NDArray[np.integer] | None = None) -> FloatArray:
@@ -126,9 +82,16 @@ def smooth_voxel_values(values: npt.NDArray[np.floating], flat_index: npt.NDArra
 
     Notes
     -----
-    :func:`smooth_within_mask` (normalised convolution, Knutsson & Westin
-    1993) with the mask of the fitted voxels of each class in turn; the
-    ``k`` rows of a class are convolved together as one stacked array.
+    ``s = G * (m v) / G * m`` with ``G`` the Gaussian kernel, ``sigma = FWHM /
+    sqrt(8 ln 2)``, truncated at 4 sigma, and ``m`` the mask of the fitted
+    voxels of the class: normalised convolution (Knutsson & Westin (1993),
+    "Normalized and differential convolution", CVPR), so that values near the
+    edge of the mask or of a class are averaged over the class only and not
+    pulled toward zero or toward the neighbouring class. The ``k`` rows of a
+    class are convolved together as one stacked array, by separable numpy
+    convolution: the fit step then needs no scipy, whose import alone
+    (0.3-0.4 s) weighed on small runs (``tests/benchmarks/README.md``).
+    Checked against ``scipy.ndimage.gaussian_filter`` in ``tests/test_estimation.py``.
     """
     values = np.atleast_2d(np.asarray(values, dtype=np.float64))
     flat = np.asarray(flat_index, dtype=np.int64)

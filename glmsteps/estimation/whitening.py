@@ -237,11 +237,6 @@ class Ar1Summary:
     e0: FloatArray
     e1: FloatArray
 
-    @property
-    def lag_products(self) -> FloatArray:
-        """``a_0, a_1`` as returned by :func:`compute_lag_products` (shape (2, n_voxels))."""
-        return np.stack([self.e0, 2.0 * self.e1])
-
 
 def summarise_residuals(design: DesignFactors, residuals: npt.NDArray[np.floating]) -> Ar1Summary:
     """Per-voxel sufficient statistics of OLS residuals for the AR(1) refit.

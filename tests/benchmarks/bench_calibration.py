@@ -120,7 +120,8 @@ def section_bias(grid: tuple[int, int, int]) -> None:
         a = est.compute_lag_products(est.fit_ols(d, Y).residuals, order)
         e = fitting.estimate_noise(a, d, fitting.VoxelGrid(grid, np.arange(v), np.full(3, ch.VOXEL_MM)))
         phi_voxel = est.levinson_durbin(e.acf)[0]
-        res = ch.fit_cell((100.0 + Y).astype(np.float32), X, roles, "arp" if order > 1 else "ar1", grid)
+        res = ch.fit_cell((100.0 + Y).astype(np.float32), X, roles, "arp" if order > 1 else "ar1", grid,
+                          order=order)
         used = res.fit.ar_coef.astype(np.float64).T
         true_phi = np.zeros(order)
         phi = ch.NOISES[noise][0]
