@@ -23,8 +23,10 @@ Noise models (``NoiseSettings.model``):
     AR(p): autocorrelations at lags 1..p estimated the same way and smoothed;
     voxels are binned on the smoothed lag-1 value, each bin's model is the
     mean of its voxels' smoothed autocorrelations (Yule-Walker AR(p)
-    coefficients), and the data are refitted bin by bin with the exact AR(p)
-    whitening (a second pass over the data, which stays in memory).
+    coefficients), and the data are refitted bin by bin by exact AR(p)
+    GLS (a second pass over the data, which stays in memory: one product per
+    voxel with the bin's GLS operator, the residual sum of squares from the
+    first pass's lag products; ``estimation.fit_arp_summary``).
 
 With tissue classes, the reference groups of the estimate, the smoothing and
 the bins never mix voxels of different classes.
@@ -301,7 +303,7 @@ def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], col
             w = est.fit_ar1_summary(design, beta64[:, sl], summ, y_censored[:, sl], bin_index[sl], bins)
         else:
             sl, Yc = block(s)
-            w = est.fit_arp_block(design, Yc, bin_index[sl], bins)
+            w = est.fit_arp_summary(design, Yc, lag[:, sl], bin_index[sl], bins)
         beta[:, sl] = w.beta
         resvar[sl] = w.residual_variance
         return sl

@@ -131,8 +131,10 @@ def test_ar1_sufficient_statistics_equal_explicit_whitening() -> None:
     Y = 10 + ar1_noise(rng, 80, 12, 0.6)
     bin_index = np.repeat(np.arange(3, dtype=np.int32), 4)
     rhos = np.array([-0.2, 0.3, 0.6])
-    fast = est.fit_ar1_block(d, Y, est.fit_ols(d, Y), bin_index, est.prepare_bins(d, rhos))
-    slow = est.fit_arp_block(d, Y, bin_index, est.prepare_bins(d, rhos, rhos[:, None]))
+    ols = est.fit_ols(d, Y)
+    fast = est.fit_ar1_block(d, Y, ols, bin_index, est.prepare_bins(d, rhos))
+    slow = est.fit_arp_summary(d, Y, est.compute_lag_products(ols.residuals, 1), bin_index,
+                               est.prepare_bins(d, rhos, rhos[:, None]))
     assert_allclose(fast.beta, slow.beta, rtol=1e-9, atol=1e-9)
     assert_allclose(fast.residual_variance, slow.residual_variance, rtol=1e-9)
 
@@ -245,13 +247,42 @@ def test_ar2_refit_matches_statsmodels_gls() -> None:
     Y = 100 + noise
     acf = est.autocorrelation_of_ar(phi, 3)[1:]
     bins = est.prepare_bins(d, acf[:1], acf[None, :])
-    fit = est.fit_arp_block(d, Y, np.zeros(3, dtype=np.int32), bins)
+    lags = est.compute_lag_products(est.fit_ols(d, Y).residuals, 2)
+    fit = est.fit_arp_summary(d, Y, lags, np.zeros(3, dtype=np.int32), bins)
     sigma = toeplitz(est.autocorrelation_of_ar(phi, n))
     for i in range(3):
         ref = sm.GLS(Y[:, i], X, sigma=sigma).fit()  # reference: statsmodels GLS
         assert_allclose(fit.beta[:-1, i], ref.params[:-1], rtol=1e-6)  # the spike coefficient is settled apart
         t = fit.beta[:-1, i] / np.sqrt(fit.residual_variance[i] * np.diag(bins.covariance[0])[:-1])
         assert_allclose(t, ref.tvalues[:-1], rtol=1e-6)
+
+
+def test_arp_refit_with_censored_scans_at_both_ends_matches_statsmodels_gls() -> None:
+    # censored volumes inside the first and last p scans (the corners of W'W), and a bin whose
+    # autocorrelations only support a lower order than the bins' (zero-padded, still exact)
+    rng = np.random.default_rng(12)
+    n = 140
+    X, roles = block_design(n, spikes=(1, 70, n - 2))
+    d = est.prepare_design(X, roles)
+    phi = np.array([0.5, -0.2, 0.1])
+    noise = scipy.signal.lfilter([1.0], np.r_[1, -phi], rng.standard_normal((n + 200, 4)), axis=0)[200:]
+    Y = 100 + noise
+    acf3 = est.autocorrelation_of_ar(phi, 4)[1:]
+    # (0.9, 0.2, 0.1) is no AR(2) autocorrelation (reflection coefficient -3.2): that bin is AR(1) 0.9
+    bins = est.prepare_bins(d, np.array([acf3[0], 0.9]), np.vstack([acf3, [0.9, 0.2, 0.1]]))
+    assert bins.order.tolist() == [3, 1]
+    lags = est.compute_lag_products(est.fit_ols(d, Y).residuals, 3)
+    bin_index = np.array([0, 0, 1, 1], dtype=np.int32)
+    fit = est.fit_arp_summary(d, Y, lags, bin_index, bins)
+    keep = X[:, :-3]
+    for i in range(4):
+        b = bin_index[i]
+        model = est.autocorrelation_of_ar(bins.phi[b, :int(bins.order[b])], n)
+        ref = sm.GLS(Y[:, i], X, sigma=toeplitz(model)).fit()   # reference: statsmodels GLS
+        assert_allclose(fit.beta[:keep.shape[1], i], ref.params[:keep.shape[1]], rtol=1e-7)
+        se = np.sqrt(fit.residual_variance[i] * np.diag(bins.covariance[b])[:keep.shape[1]])
+        t = fit.beta[:keep.shape[1], i] / se
+        assert_allclose(t, ref.tvalues[:keep.shape[1]], rtol=1e-7)
 
 
 def test_ar_order_fits_design() -> None:

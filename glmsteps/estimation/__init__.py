@@ -70,6 +70,6 @@ from .ols import (DesignFactors, FloatArray, OlsBlock, ScalingMethod, apply_grou
                   fit_ols, multiply_columns, prepare_design)
 from .smoothing import convolve_axis, gaussian_kernel, smooth_voxel_values
 from .whitening import (Ar1Summary, NoiseBins, WhitenedBlock, assign_bins, bin_means, fit_ar1_block, fit_ar1_summary,
-                        fit_arp_block, prepare_bins, summarise_residuals, whiten_ar, whitened_covariance)
+                        fit_arp_summary, prepare_bins, summarise_residuals, whiten_ar, whitened_covariance)
 
 NoiseModel = Literal["ols", "ar1", "arp"]

@@ -123,20 +123,27 @@ class NoiseBins:
     Attributes
     ----------
     rho : ndarray, shape (n_bins,)
-        Lag-1 coefficient of each bin (the bin centre).
+        Lag-1 autocorrelation of each bin's model.
     phi : ndarray, shape (n_bins, order)
-        AR coefficients used for whitening (``phi[:, 0] = rho`` for AR(1)).
+        AR coefficients used for whitening (zeros above the order a bin uses).
     innovation_variance : ndarray, shape (n_bins,)
     acf : ndarray, shape (n_bins, order)
         Autocorrelations at lags 0..order-1 of each bin's model.
     order : ndarray of int, shape (n_bins,)
         AR order actually used by each bin (see :func:`levinson_durbin`).
     covariance : ndarray, shape (n_bins, n_regressors, n_regressors)
-        ``pinv(Xw' Xw)`` of each bin's whitened design.
-    pinv : ndarray, shape (n_bins, n_regressors, n_scans)
-        ``pinv(Xw)``.
-    whitened_design : ndarray, shape (n_bins, n_scans, n_regressors)
-        ``Xw`` of each bin.
+        ``pinv(Xw' Xw)`` of each bin's whitened design ``Xw = W X``.
+    information : ndarray, shape (n_bins, n_regressors, n_regressors)
+        ``Xw' Xw = X' Q X`` with ``Q = W' W``.
+    gls_operator : ndarray, shape (n_bins, n_regressors, n_scans)
+        ``pinv(Xw) W``: the GLS estimate of a series is ``gls_operator @ y``
+        (AR(p) bins; empty for AR(1) bins, refitted from sufficient statistics).
+    band : ndarray, shape (n_bins, order + 1)
+        ``g_d``, ``d = 0..order``: away from its corners ``Q`` is the banded
+        Toeplitz matrix ``Q_ij = g_|i-j|``, ``g_d = sum_k psi_k psi_(k+d)`` with
+        ``psi = (1, -phi_1, ..., -phi_order)``.
+    corner_head, corner_tail : ndarray, shape (n_bins, order, order)
+        ``Q - T(g)`` on the first and on the last ``order`` scans (zero elsewhere).
     """
 
     rho: FloatArray
@@ -145,8 +152,28 @@ class NoiseBins:
     acf: FloatArray
     order: npt.NDArray[np.int64]
     covariance: FloatArray
-    pinv: FloatArray
-    whitened_design: FloatArray
+    information: FloatArray
+    gls_operator: FloatArray
+    band: FloatArray
+    corner_head: FloatArray
+    corner_tail: FloatArray
+
+
+def _band_and_corners(phi: FloatArray, innovation_variance: float,
+                      acf_head: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """``g`` and the two corners of ``Q = W' W`` for the AR(P) whitening :func:`whiten_ar`.
+
+    Rows ``t >= P`` of ``W`` hold ``psi`` at ``t - k``; the first P rows are the head. ``Q_ij`` for
+    ``P <= i, j < n - P`` sums whole body rows (``g_|i-j|``); only the first P x P block (head rows
+    instead of body rows) and the last P x P block (rows past the end missing) differ.
+    """
+    P = phi.size
+    psi = np.r_[1.0, -phi]
+    band = np.array([psi[:P + 1 - d] @ psi[d:] for d in range(P + 1)])
+    T = band[np.abs(np.subtract.outer(np.arange(P), np.arange(P)))]
+    top = whiten_ar(np.eye(3 * P), phi, innovation_variance, acf_head)[:2 * P, :P]   # rows 2P.. miss cols < P
+    last = sum(psi[k] * np.eye(P, k=-k) for k in range(P))                        # rows n-P..n-1, cols n-P..n-1
+    return band, top.T @ top - T, last.T @ last - T
 
 
 def prepare_bins(design: DesignFactors, bin_rho: npt.ArrayLike,
@@ -157,16 +184,27 @@ def prepare_bins(design: DesignFactors, bin_rho: npt.ArrayLike,
     ----------
     design : DesignFactors
     bin_rho : array_like, shape (n_bins,)
-        Lag-1 coefficient of each bin.
+        Lag-1 autocorrelation of each bin.
     bin_acf : ndarray, shape (n_bins, order), optional
         Autocorrelations at lags 1..order of each bin (AR(q) models; column 0
-        should equal ``bin_rho``). ``None`` means AR(1).
+        should equal ``bin_rho``). ``None`` means AR(1), refitted from
+        sufficient statistics (:func:`fit_ar1_summary`), so the operators of
+        :func:`fit_arp_summary` are not built.
 
     Returns
     -------
     NoiseBins
+
+    Notes
+    -----
+    A bin whose autocorrelations support only a lower order ``q`` (see
+    :func:`levinson_durbin`) is whitened as the AR(order) model with
+    ``phi_k = 0`` above ``q`` and the head of its own autocorrelations: that is
+    still an exact whitening of the AR(q) correlation, and GLS does not depend
+    on which exact whitening is used.
     """
     bin_rho = np.asarray(bin_rho, dtype=np.float64)
+    operators = bin_acf is not None
     if bin_acf is None:
         bin_acf = bin_rho[:, None]
     bin_acf = np.asarray(bin_acf, dtype=np.float64)
@@ -174,18 +212,32 @@ def prepare_bins(design: DesignFactors, bin_rho: npt.ArrayLike,
     phi, err, used = levinson_durbin(bin_acf.T)
     phi = phi.T
     n, p = design.X.shape
-    acf_head = np.zeros((bin_rho.size, order))
-    covs = np.empty((bin_rho.size, p, p))
-    pinvs = np.empty((bin_rho.size, p, n))
-    designs = np.empty((bin_rho.size, n, p))
-    for b in range(bin_rho.size):
-        q = int(used[b])
-        r = autocorrelation_of_ar(phi[b, :q], order)
+    nb = bin_rho.size
+    acf_head = np.zeros((nb, order))
+    covs = np.empty((nb, p, p))
+    info = np.empty((nb, p, p))
+    ops = np.empty((nb, p, n)) if operators else np.zeros((nb, 0, 0))
+    band = np.zeros((nb, order + 1))
+    heads = np.zeros((nb, order, order))
+    tails = np.zeros((nb, order, order))
+    for b in range(nb):
+        r = autocorrelation_of_ar(phi[b, :int(used[b])], order)
         acf_head[b] = r
-        designs[b] = whiten_ar(design.X, phi[b, :q], float(err[b]), r[:q])
-        pinvs[b], covs[b] = whitened_covariance(designs[b])
+        Xw = whiten_ar(design.X, phi[b], float(err[b]), r)
+        pinv, covs[b] = whitened_covariance(Xw)
+        info[b] = Xw.T @ Xw
+        band[b], heads[b], tails[b] = _band_and_corners(phi[b], float(err[b]), r)
+        if operators:
+            # pinv(Xw) W = C Xw' W = C (Q X)': Q X from the band and the corners, no n x n matrix
+            QX = band[b, 0] * design.X
+            for d in range(1, order + 1):
+                QX[d:] += band[b, d] * design.X[:-d]
+                QX[:-d] += band[b, d] * design.X[d:]
+            QX[:order] += heads[b] @ design.X[:order]
+            QX[-order:] += tails[b] @ design.X[-order:]
+            ops[b] = covs[b] @ QX.T
     return NoiseBins(rho=bin_rho, phi=phi, innovation_variance=err, acf=acf_head, order=used, covariance=covs,
-                     pinv=pinvs, whitened_design=designs)
+                     information=info, gls_operator=ops, band=band, corner_head=heads, corner_tail=tails)
 
 
 @dataclass(frozen=True)
@@ -336,14 +388,17 @@ def fit_ar1_block(design: DesignFactors, Y: npt.NDArray[np.floating], ols: OlsBl
     return fit_ar1_summary(design, ols.beta, summary, Y[design.spike_rows], bin_index, bins)
 
 
-def fit_arp_block(design: DesignFactors, Y: npt.NDArray[np.floating], bin_index: npt.NDArray[np.integer],
-                  bins: NoiseBins) -> WhitenedBlock:
-    """AR(q)-prewhitened refit of a block of voxels, bin by bin.
+def fit_arp_summary(design: DesignFactors, Y: npt.NDArray[np.floating], lag_products: npt.NDArray[np.floating],
+                    bin_index: npt.NDArray[np.integer], bins: NoiseBins) -> WhitenedBlock:
+    """AR(p)-prewhitened refit of a block of voxels, bin by bin, without whitening the data.
 
     Parameters
     ----------
     design : DesignFactors
     Y : ndarray, shape (n_scans, n_voxels)
+        Scaled signal.
+    lag_products : ndarray, shape (order + 1, n_voxels)
+        Lag products ``a_0..a_order`` of the block's OLS residuals (:func:`compute_lag_products`).
     bin_index : ndarray of int, shape (n_voxels,)
     bins : NoiseBins
         From :func:`prepare_bins` with ``bin_acf``.
@@ -354,20 +409,42 @@ def fit_arp_block(design: DesignFactors, Y: npt.NDArray[np.floating], bin_index:
 
     Notes
     -----
-    Per bin: ``beta = pinv(W X) W y``, ``sigma^2 = |W y - W X beta|^2 / dof``
-    with ``W`` from :func:`whiten_ar` (generalised least squares).
+    Per bin, with ``W`` the exact AR whitening (:func:`whiten_ar`) and
+    ``Q = W' W``: ``beta = pinv(W X) W y`` (``bins.gls_operator``), and with the
+    OLS estimate ``beta_o`` and residual ``e = y - X beta_o`` the whitened
+    residual sum of squares is ``e'Qe - d' X'QX d``, ``d = beta - beta_o``
+    (GLS, e.g. Seber & Lee (2003) *Linear Regression Analysis*, sec. 3.10).
+    ``Q`` is banded Toeplitz but for its two corners (:class:`NoiseBins`), so
+    ``e'Qe = sum_d g_d a_d + e_h' C_h e_h + e_t' C_t e_t`` from the residual lag
+    products and the first and last ``order`` residuals. This is the refit of
+    ``W y`` on ``W X`` without forming ``W y``; checked against statsmodels GLS
+    in ``tests/test_estimation.py``.
     """
     Y = np.asarray(Y, dtype=np.float64)
+    lag_products = np.asarray(lag_products, dtype=np.float64)
     p, v = design.X.shape[1], Y.shape[1]
+    P = bins.band.shape[1] - 1
+    head_rows, tail_rows = np.arange(P), np.arange(Y.shape[0] - P, Y.shape[0])
     beta = np.empty((p, v))
     rss = np.empty(v)
-    for b in np.unique(bin_index):
-        cols = np.flatnonzero(bin_index == b)
-        q = int(bins.order[b])
-        Yw = whiten_ar(Y[:, cols], bins.phi[b, :q], float(bins.innovation_variance[b]), bins.acf[b, :q])
-        bb = multiply_columns(bins.pinv[b], Yw)
-        res = Yw - multiply_columns(bins.whitened_design[b], bb)
-        beta[:, cols] = bb
-        rss[cols] = np.einsum("tv,tv->v", res, res)
+    # one gather of the block into bin order (C order), then each bin is a slice of columns
+    order = np.argsort(bin_index, kind="stable")
+    Ys = np.ascontiguousarray(Y[:, order])
+    keys, starts = np.unique(np.asarray(bin_index)[order], return_index=True)
+    for b, lo, hi in zip(keys, starts, np.r_[starts[1:], v]):
+        cols = order[lo:hi]
+        Yb = Ys[:, lo:hi]
+        both = multiply_columns(np.vstack([design.pinv, bins.gls_operator[b]]), Yb)
+        b_ols, b_gls = both[:p], both[p:]
+        e_head = Yb[head_rows] - multiply_columns(design.X[head_rows], b_ols)
+        e_tail = Yb[tail_rows] - multiply_columns(design.X[tail_rows], b_ols)
+        e_head[design.censored[head_rows]] = 0.0          # as in the lag products (fit_ols)
+        e_tail[design.censored[tail_rows]] = 0.0
+        eqe = np.einsum("d,dv->v", bins.band[b], lag_products[:, cols])
+        eqe += np.einsum("iv,ij,jv->v", e_head, bins.corner_head[b], e_head)
+        eqe += np.einsum("iv,ij,jv->v", e_tail, bins.corner_tail[b], e_tail)
+        delta = b_gls - b_ols
+        rss[cols] = eqe - np.einsum("iv,ij,jv->v", delta, bins.information[b], delta)
+        beta[:, cols] = b_gls
     _settle_spikes(design, Y[design.spike_rows], beta)
-    return WhitenedBlock(beta=beta, residual_variance=rss / design.dof)
+    return WhitenedBlock(beta=beta, residual_variance=np.maximum(rss, 0.0) / design.dof)

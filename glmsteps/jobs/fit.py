@@ -336,7 +336,8 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
                 order = est.check_ar_order(design, settings.ar_order)
                 if order < settings.ar_order:
                     warnings.warn(f"{in_paths['design']}: AR({settings.ar_order}) does not fit a design with "
-                                  f"{design.dof} residual degrees of freedom; using AR({order})",
+                                  f"{design.dof} residual degrees of freedom (it needs "
+                                  f"{est.MIN_DOF_PER_AR_COEFFICIENT} per coefficient); using AR({order})",
                                   GlmstepsWarning, stacklevel=2)
             # --- read -----------------------------------------------------------------------------
             t_read = time.perf_counter()
