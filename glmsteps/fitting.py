@@ -47,6 +47,9 @@ from . import estimation as est
 
 logger = logging.getLogger("glmsteps")
 
+#: Side (mm) of the cubes that key the reference groups of the autocorrelation estimate (:func:`estimate_noise`).
+REFERENCE_BLOCK_MM = 12.0
+
 
 @dataclass(frozen=True)
 class NoiseSettings:
@@ -170,6 +173,23 @@ def run_chunks(work: Callable[[int], slice], starts: range, threads: int, label:
             _log_progress(label, sl.stop, total, t0)
 
 
+def block_means(values: npt.NDArray[np.float64], grid: VoxelGrid, block_mm: float) -> npt.NDArray[np.float64]:
+    """Mean of ``values`` (shape (v,)) over the voxels of the same class in the same cube of about ``block_mm``.
+
+    The cubes tile the grid (``max(1, round(block_mm / voxel size))`` voxels a side); the mean of a
+    voxel's cube and class, shape (v,). Sums by ``bincount`` over all voxels, so chunk independent.
+    """
+    side = np.maximum(np.round(block_mm / np.asarray(grid.voxel_size_mm, dtype=np.float64)), 1).astype(np.int64)
+    ijk = np.unravel_index(np.asarray(grid.flat_index, dtype=np.int64), grid.shape)
+    cells = [int(-(-n // s)) for n, s in zip(grid.shape, side)]
+    key = np.ravel_multi_index(tuple(i // s for i, s in zip(ijk, side)), cells)
+    if grid.classes is not None:
+        key = key + np.asarray(grid.classes, dtype=np.int64) * int(np.prod(cells))
+    _, block = np.unique(key, return_inverse=True)
+    block = block.reshape(-1)
+    return (np.bincount(block, weights=values) / np.bincount(block))[block]
+
+
 def estimate_noise(lag_products: npt.NDArray[np.float64], design: est.DesignFactors,
                    grid: VoxelGrid) -> est.AutocorrelationEstimate:
     """Each voxel's autocorrelations at lags 1..p from its residual lag products (before smoothing).
@@ -188,20 +208,28 @@ def estimate_noise(lag_products: npt.NDArray[np.float64], design: est.DesignFact
     Notes
     -----
     :func:`glmsteps.estimation.estimate_autocorrelation`, with reference groups keyed by the
-    first-pass (truncated) lag-1 estimate smoothed at ``estimation.REFERENCE_SMOOTHING_FWHM_MM``
-    within the tissue classes, so that a voxel's own noise hardly moves its group.
+    first-pass (truncated) lag-1 estimate averaged over cubes of ``REFERENCE_BLOCK_MM`` within the
+    tissue classes (:func:`block_means`), so that a voxel's own noise hardly moves its group (a
+    cube of 12 mm holds 64 voxels of 3 mm).
     """
     moments = est.compute_lag_moments(design, lag_products.shape[0] - 1)
-    key = est.smooth_voxel_values(est.truncated_autocorrelation(lag_products, moments)[:1], grid.flat_index,
-                                  grid.shape, est.REFERENCE_SMOOTHING_FWHM_MM, grid.voxel_size_mm, grid.classes)[0]
+    key = block_means(est.truncated_autocorrelation(lag_products, moments, 1)[0], grid, REFERENCE_BLOCK_MM)
     return est.estimate_autocorrelation(lag_products, design, moments, grid.classes, key)
 
 
 def _bin_models(design: est.DesignFactors, acf: npt.NDArray[np.float64], noise: NoiseSettings,
-                classes: npt.NDArray[np.int64] | None) -> tuple[npt.NDArray[np.int32], est.NoiseBins]:
-    """Bins on the smoothed lag-1 autocorrelation (within classes) and each bin's whitening."""
-    bin_index, centres = est.assign_bins(acf[0], noise.bin_width, classes)
-    means = est.bin_means(np.clip(acf, -est.MAX_ABS_RHO, est.MAX_ABS_RHO), bin_index, centres.size)
+                grid: VoxelGrid) -> tuple[npt.NDArray[np.int32], est.NoiseBins]:
+    """Bins on the smoothed lag-1 autocorrelation (within classes) and each bin's whitening.
+
+    Only lag 1 is smoothed: it decides the bin, and the bin's model is the mean over its voxels,
+    which averages the higher lags as much as smoothing them first would.
+    """
+    lag1 = est.smooth_voxel_values(acf[:1], grid.flat_index, grid.shape, noise.smoothing_fwhm_mm,
+                                   grid.voxel_size_mm, grid.classes)
+    bin_index, centres = est.assign_bins(lag1[0], noise.bin_width, grid.classes)
+    clipped = np.clip(acf, -est.MAX_ABS_RHO, est.MAX_ABS_RHO)
+    clipped[0] = np.clip(lag1[0], -est.MAX_ABS_RHO, est.MAX_ABS_RHO)
+    means = est.bin_means(clipped, bin_index, centres.size)
     if noise.model == "ar1":
         return bin_index, est.prepare_bins(design, means[:, 0])
     return bin_index, est.prepare_bins(design, means[:, 0], means)
@@ -287,11 +315,8 @@ def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], col
         return VoxelFit(beta=beta64.astype(np.float32), residual_variance=resvar,
                         ar_coef=np.zeros((v, 1), dtype=np.float32), lag1=lag1, bin=np.zeros(v, dtype=np.int32),
                         bin_rho=np.zeros(1), bin_covariance=cov, order=0)
-    acf = est.smooth_voxel_values(estimate.acf, grid.flat_index, grid.shape, noise.smoothing_fwhm_mm,
-                                  grid.voxel_size_mm, grid.classes)
+    bin_index, bins = _bin_models(design, estimate.acf, noise, grid)
     del estimate
-    bin_index, bins = _bin_models(design, acf, noise, grid.classes)
-    del acf
     beta = np.empty((p, v), dtype=np.float32)
     resvar = np.empty(v, dtype=np.float32)
 
@@ -302,8 +327,15 @@ def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], col
                                   e_last=ends[1, sl], e0=lag[0, sl], e1=0.5 * lag[1, sl])
             w = est.fit_ar1_summary(design, beta64[:, sl], summ, y_censored[:, sl], bin_index[sl], bins)
         else:
-            sl, Yc = block(s)
-            w = est.fit_arp_summary(design, Yc, lag[:, sl], bin_index[sl], bins)
+            # the chunk's voxels in bin order, gathered once (each bin is then a slice of columns)
+            sl = slice(s, min(s + chunk, v))
+            order = np.argsort(bin_index[sl], kind="stable")
+            here = s + order
+            Yc = np.multiply(np.take(Y, columns[here], axis=1), factors[here], dtype=np.float64)
+            w = est.fit_arp_summary(design, Yc, lag[:, here], bin_index[here], bins)
+            beta[:, here] = w.beta
+            resvar[here] = w.residual_variance
+            return sl
         beta[:, sl] = w.beta
         resvar[sl] = w.residual_variance
         return sl

@@ -62,7 +62,7 @@ from __future__ import annotations
 from typing import Literal
 
 from .autocorrelation import (MAX_ABS_RHO, MAX_AR_ORDER, MIN_BIAS_MATRIX_RCOND, MIN_DOF_PER_AR_COEFFICIENT,
-                              REFERENCE_GROUP_WIDTH, REFERENCE_SMOOTHING_FWHM_MM, AutocorrelationEstimate,
+                              REFERENCE_GROUP_WIDTH, AutocorrelationEstimate,
                               ar_autocorrelation, autocorrelation_of_ar, check_ar_order, compute_lag_moments,
                               compute_lag_products, compute_ratio_moments, estimate_autocorrelation,
                               extend_autocorrelation, levinson_durbin, truncated_autocorrelation)

@@ -264,8 +264,6 @@ def compute_ratio_moments(design: DesignFactors, moments: npt.NDArray[np.floatin
 
 #: Width (in the lag-1 autocorrelation) of the reference groups of :func:`estimate_autocorrelation`.
 REFERENCE_GROUP_WIDTH = 0.05
-#: FWHM (mm) of the smoothing of the first-pass lag-1 estimate that keys the reference groups (the fit step).
-REFERENCE_SMOOTHING_FWHM_MM = 12.0
 #: Newton steps (at most) and tolerance of the reference models' fixed point.
 _NEWTON_STEPS, _NEWTON_TOLERANCE = 20, 1e-11
 
@@ -393,16 +391,20 @@ def _curvature_bias(K: FloatArray, z: FloatArray, cov: FloatArray) -> FloatArray
     return 0.5 * (first + second)
 
 
-def truncated_autocorrelation(lag_products: npt.NDArray[np.floating], moments: npt.NDArray[np.floating]) -> FloatArray:
-    """Worsley's truncated correction: lags 1..p from ``a = s M_T (1, rho)``, shape (p, n_voxels).
+def truncated_autocorrelation(lag_products: npt.NDArray[np.floating], moments: npt.NDArray[np.floating],
+                              max_lag: int | None = None) -> FloatArray:
+    """Worsley's truncated correction: lags 1..max_lag (default p) of the solution of ``a = s M_T (1, rho)``.
 
-    A first pass only (it ignores the lags beyond p and the ratio bias); used to choose reference groups.
+    Returns shape (max_lag, n_voxels). A first pass only (it ignores the lags beyond p and the ratio
+    bias); the fit uses its lag 1 to choose reference groups.
     """
+    if max_lag is None:
+        max_lag = moments.shape[0] - 1
     a = np.asarray(lag_products, dtype=np.float64)
     p = moments.shape[0] - 1
     # element-wise products (apply_group_matrices), not a LAPACK solve over the voxels: a BLAS kernel
     # can round a column differently with the array's length and alignment
-    truncated = np.linalg.inv(np.asarray(moments, dtype=np.float64)[:, :p + 1])[None]
+    truncated = np.linalg.inv(np.asarray(moments, dtype=np.float64)[:, :p + 1])[None, :max_lag + 1]
     return _normalise(apply_group_matrices(truncated, np.zeros(a.shape[1], dtype=np.int64), a))
 
 
@@ -423,8 +425,8 @@ def estimate_autocorrelation(lag_products: npt.NDArray[np.floating], design: Des
         never shared across classes.
     reference_key : ndarray, shape (n_voxels,), optional
         A lag-1 autocorrelation of each voxel that varies little with the
-        voxel's own noise (the fit step passes the truncated estimate smoothed
-        at ``REFERENCE_SMOOTHING_FWHM_MM``); voxels share a reference only
+        voxel's own noise (the fit step passes the truncated estimate averaged
+        over cubes of 12 mm, ``glmsteps.fitting.estimate_noise``); voxels share a reference only
         when their keys agree to within ``REFERENCE_GROUP_WIDTH``. Without it
         each class has one reference.
 
@@ -463,9 +465,9 @@ def estimate_autocorrelation(lag_products: npt.NDArray[np.floating], design: Des
     _, group = np.unique(key, return_inverse=True)
     group = group.reshape(-1).astype(np.int64)
     counts = np.bincount(group).astype(np.float64)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        q = np.where(a[0] > 0, a[1:] / a[0], 0.0)
-    mean_ratios = np.stack([np.bincount(group, weights=row, minlength=counts.size) for row in q]) / counts
+    scale = np.divide(1.0, a[0], out=np.zeros(v), where=a[0] > 0)
+    mean_ratios = np.stack([np.bincount(group, weights=a[j] * scale, minlength=counts.size)
+                            for j in range(1, a.shape[0])]) / counts
     reference, rho, bias, cov = _solve_references(moments, design, mean_ratios)
     K = _lag_solvers(moments, rho, bias)
     # (K (1, q))_(1:) / (K (1, q))_0 is not linear in q: remove its curvature bias at the group's ratios

@@ -78,14 +78,17 @@ def apply_group_matrices(matrices: FloatArray, group: npt.NDArray[np.integer], Z
     gathered for every voxel (the same products and sums, in the same order,
     as a per-voxel matrix-vector product, whatever the other voxels).
     """
+    group = np.asarray(group)
     out = np.empty((matrices.shape[1], Z.shape[1]))
-    for b in np.unique(group):
-        cols = np.flatnonzero(group == b)
-        Zb = Z[:, cols]
-        acc = np.zeros((matrices.shape[1], cols.size))
-        for j in range(matrices.shape[2]):
+    order = np.argsort(group, kind="stable")
+    Zs = np.ascontiguousarray(np.asarray(Z, dtype=np.float64)[:, order])
+    keys, starts = np.unique(group[order], return_index=True)
+    for b, lo, hi in zip(keys, starts, np.r_[starts[1:], group.size]):
+        Zb = Zs[:, lo:hi]
+        acc = matrices[b, :, 0, None] * Zb[0]
+        for j in range(1, matrices.shape[2]):
             acc += matrices[b, :, j, None] * Zb[j]
-        out[:, cols] = acc
+        out[:, order[lo:hi]] = acc
     return out
 
 

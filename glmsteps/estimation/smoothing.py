@@ -87,9 +87,8 @@ def smooth_voxel_values(values: npt.NDArray[np.floating], flat_index: npt.NDArra
     voxels of the class: normalised convolution (Knutsson & Westin (1993),
     "Normalized and differential convolution", CVPR), so that values near the
     edge of the mask or of a class are averaged over the class only and not
-    pulled toward zero or toward the neighbouring class. The ``k`` rows of a
-    class are convolved together as one stacked array, by separable numpy
-    convolution: the fit step then needs no scipy, whose import alone
+    pulled toward zero or toward the neighbouring class. Separable numpy
+    convolution, one row at a time: the fit step then needs no scipy, whose import alone
     (0.3-0.4 s) weighed on small runs (``tests/benchmarks/README.md``).
     Checked against ``scipy.ndimage.gaussian_filter`` in ``tests/test_estimation.py``.
     """
@@ -98,19 +97,24 @@ def smooth_voxel_values(values: npt.NDArray[np.floating], flat_index: npt.NDArra
     if fwhm_mm <= 0 or values.shape[1] == 0:
         return values.copy()
     k = values.shape[0]
+    shape = tuple(int(x) for x in shape)
     sigma = fwhm_mm / math.sqrt(8.0 * math.log(2.0)) / np.asarray(voxel_size_mm, dtype=np.float64)
     kernels = [gaussian_kernel(float(s)) for s in sigma]
     labels = np.zeros(flat.size, dtype=np.int64) if classes is None else np.asarray(classes, dtype=np.int64)
     out = np.empty_like(values)
-    n_cells = int(np.prod(shape))
+
+    def convolve(grid: FloatArray) -> FloatArray:
+        for axis, w in enumerate(kernels):
+            grid = convolve_axis(grid, w, axis)
+        return grid
+
     for c in np.unique(labels):
         sel = np.flatnonzero(labels == c)
-        stack = np.zeros((k + 1, n_cells))
-        stack[:k, flat[sel]] = values[:, sel]
-        stack[k, flat[sel]] = 1.0
-        grid = stack.reshape((k + 1,) + tuple(shape))
-        for axis, w in enumerate(kernels):
-            grid = convolve_axis(grid, w, axis + 1)
-        smoothed = grid.reshape(k + 1, n_cells)[:, flat[sel]]
-        out[:, sel] = smoothed[:k] / smoothed[k]
+        grid = np.zeros(shape)
+        grid.flat[flat[sel]] = 1.0
+        weight = convolve(grid).flat[flat[sel]]
+        for row in range(k):                     # one grid at a time: a whole-brain grid per row is large
+            grid = np.zeros(shape)
+            grid.flat[flat[sel]] = values[row, sel]
+            out[row, sel] = convolve(grid).flat[flat[sel]] / weight
     return out

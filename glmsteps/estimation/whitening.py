@@ -133,17 +133,20 @@ class NoiseBins:
         AR order actually used by each bin (see :func:`levinson_durbin`).
     covariance : ndarray, shape (n_bins, n_regressors, n_regressors)
         ``pinv(Xw' Xw)`` of each bin's whitened design ``Xw = W X``.
-    information : ndarray, shape (n_bins, n_regressors, n_regressors)
-        ``Xw' Xw = X' Q X`` with ``Q = W' W``.
-    gls_operator : ndarray, shape (n_bins, n_regressors, n_scans)
-        ``pinv(Xw) W``: the GLS estimate of a series is ``gls_operator @ y``
-        (AR(p) bins; empty for AR(1) bins, refitted from sufficient statistics).
     band : ndarray, shape (n_bins, order + 1)
-        ``g_d``, ``d = 0..order``: away from its corners ``Q`` is the banded
-        Toeplitz matrix ``Q_ij = g_|i-j|``, ``g_d = sum_k psi_k psi_(k+d)`` with
-        ``psi = (1, -phi_1, ..., -phi_order)``.
-    corner_head, corner_tail : ndarray, shape (n_bins, order, order)
-        ``Q - T(g)`` on the first and on the last ``order`` scans (zero elsewhere).
+        ``g_d``, ``d = 0..order``: away from its corners ``Q = W' W`` is the
+        banded Toeplitz matrix ``Q_ij = g_|i-j|``, ``g_d = sum_k psi_k psi_(k+d)``
+        with ``psi = (1, -phi_1, ..., -phi_order)``.
+    information : ndarray, shape (n_bins, n_regressors, n_regressors)
+        ``Xw' Xw = X' Q X``.
+    refit_operator : ndarray, shape (n_bins, n_regressors + 2 order, n_scans)
+        Rows applied to a series ``y`` by :func:`fit_arp_summary`: ``G = pinv(Xw) W``
+        (the GLS estimate ``G y``) and ``u_i' R`` on the first and on the last
+        ``order`` scans, with ``u_i`` the eigenvectors of the two corners of
+        ``Q - T(g)`` (AR(p) bins; empty for AR(1) bins, refitted from
+        sufficient statistics).
+    corner_weights : ndarray, shape (n_bins, 2 order)
+        The eigenvalues of the two corners.
     """
 
     rho: FloatArray
@@ -153,10 +156,9 @@ class NoiseBins:
     order: npt.NDArray[np.int64]
     covariance: FloatArray
     information: FloatArray
-    gls_operator: FloatArray
     band: FloatArray
-    corner_head: FloatArray
-    corner_tail: FloatArray
+    refit_operator: FloatArray
+    corner_weights: FloatArray
 
 
 def _band_and_corners(phi: FloatArray, innovation_variance: float,
@@ -215,29 +217,40 @@ def prepare_bins(design: DesignFactors, bin_rho: npt.ArrayLike,
     nb = bin_rho.size
     acf_head = np.zeros((nb, order))
     covs = np.empty((nb, p, p))
-    info = np.empty((nb, p, p))
-    ops = np.empty((nb, p, n)) if operators else np.zeros((nb, 0, 0))
     band = np.zeros((nb, order + 1))
-    heads = np.zeros((nb, order, order))
-    tails = np.zeros((nb, order, order))
+    info = np.empty((nb, p, p))
+    ops = np.empty((nb, p + 2 * order, n)) if operators else np.zeros((nb, 0, 0))
+    weights = np.zeros((nb, 2 * order))
+    if operators:
+        R = -design.X @ design.pinv
+        R[np.diag_indices(n)] += 1.0
+        ends = [np.arange(order), np.arange(n - order, n)]
+        R_ends = [R[rows].copy() for rows in ends]
+        for rows, Rr in zip(ends, R_ends):
+            Rr[design.censored[rows]] = 0.0          # exactly zero, as the OLS residuals of fit_ols
     for b in range(nb):
         r = autocorrelation_of_ar(phi[b, :int(used[b])], order)
         acf_head[b] = r
         Xw = whiten_ar(design.X, phi[b], float(err[b]), r)
-        pinv, covs[b] = whitened_covariance(Xw)
+        _, covs[b] = whitened_covariance(Xw)
         info[b] = Xw.T @ Xw
-        band[b], heads[b], tails[b] = _band_and_corners(phi[b], float(err[b]), r)
+        band[b], head, tail = _band_and_corners(phi[b], float(err[b]), r)
         if operators:
-            # pinv(Xw) W = C Xw' W = C (Q X)': Q X from the band and the corners, no n x n matrix
+            # G = pinv(Xw) W = C Xw' W = C (Q X)': Q X from the band and the corners, no n x n matrix
             QX = band[b, 0] * design.X
             for d in range(1, order + 1):
                 QX[d:] += band[b, d] * design.X[:-d]
                 QX[:-d] += band[b, d] * design.X[d:]
-            QX[:order] += heads[b] @ design.X[:order]
-            QX[-order:] += tails[b] @ design.X[-order:]
-            ops[b] = covs[b] @ QX.T
+            QX[:order] += head @ design.X[:order]
+            QX[-order:] += tail @ design.X[-order:]
+            G = covs[b] @ QX.T
+            ops[b, :p] = G
+            for k, (corner, Rr) in enumerate(zip((head, tail), R_ends)):
+                lam, U = np.linalg.eigh(corner)
+                weights[b, k * order:(k + 1) * order] = lam
+                ops[b, p + k * order:p + (k + 1) * order] = U.T @ Rr
     return NoiseBins(rho=bin_rho, phi=phi, innovation_variance=err, acf=acf_head, order=used, covariance=covs,
-                     information=info, gls_operator=ops, band=band, corner_head=heads, corner_tail=tails)
+                     information=info, band=band, refit_operator=ops, corner_weights=weights)
 
 
 @dataclass(frozen=True)
@@ -416,35 +429,39 @@ def fit_arp_summary(design: DesignFactors, Y: npt.NDArray[np.floating], lag_prod
     (GLS, e.g. Seber & Lee (2003) *Linear Regression Analysis*, sec. 3.10).
     ``Q`` is banded Toeplitz but for its two corners (:class:`NoiseBins`), so
     ``e'Qe = sum_d g_d a_d + e_h' C_h e_h + e_t' C_t e_t`` from the residual lag
-    products and the first and last ``order`` residuals. This is the refit of
-    ``W y`` on ``W X`` without forming ``W y``; checked against statsmodels GLS
-    in ``tests/test_estimation.py``.
+    products and the first and last ``order`` residuals (``C = sum_i l_i u_i u_i'``,
+    ``e_h' C_h e_h = sum_i l_i (u_i' R y)^2``). All per-bin products are one
+    product with ``bins.refit_operator``. This is the refit of ``W y`` on
+    ``W X`` without forming ``W y``; checked against statsmodels GLS in
+    ``tests/test_estimation.py``.
     """
     Y = np.asarray(Y, dtype=np.float64)
     lag_products = np.asarray(lag_products, dtype=np.float64)
+    bin_index = np.asarray(bin_index)
     p, v = design.X.shape[1], Y.shape[1]
     P = bins.band.shape[1] - 1
-    head_rows, tail_rows = np.arange(P), np.arange(Y.shape[0] - P, Y.shape[0])
     beta = np.empty((p, v))
     rss = np.empty(v)
-    # one gather of the block into bin order (C order), then each bin is a slice of columns
+    beta_ols = multiply_columns(design.pinv, Y)
+    # each bin a slice of columns: gather into bin order unless the caller did (glmsteps.fitting does)
     order = np.argsort(bin_index, kind="stable")
-    Ys = np.ascontiguousarray(Y[:, order])
-    keys, starts = np.unique(np.asarray(bin_index)[order], return_index=True)
+    if np.all(order == np.arange(v)):
+        Ys = Y
+    else:
+        Ys = np.ascontiguousarray(Y[:, order])
+    keys, starts = np.unique(bin_index[order], return_index=True)
     for b, lo, hi in zip(keys, starts, np.r_[starts[1:], v]):
         cols = order[lo:hi]
-        Yb = Ys[:, lo:hi]
-        both = multiply_columns(np.vstack([design.pinv, bins.gls_operator[b]]), Yb)
-        b_ols, b_gls = both[:p], both[p:]
-        e_head = Yb[head_rows] - multiply_columns(design.X[head_rows], b_ols)
-        e_tail = Yb[tail_rows] - multiply_columns(design.X[tail_rows], b_ols)
-        e_head[design.censored[head_rows]] = 0.0          # as in the lag products (fit_ols)
-        e_tail[design.censored[tail_rows]] = 0.0
+        rows = multiply_columns(bins.refit_operator[b], Ys[:, lo:hi])
+        b_gls = rows[:p]
+        delta = b_gls - beta_ols[:, cols]
         eqe = np.einsum("d,dv->v", bins.band[b], lag_products[:, cols])
-        eqe += np.einsum("iv,ij,jv->v", e_head, bins.corner_head[b], e_head)
-        eqe += np.einsum("iv,ij,jv->v", e_tail, bins.corner_tail[b], e_tail)
-        delta = b_gls - b_ols
-        rss[cols] = eqe - np.einsum("iv,ij,jv->v", delta, bins.information[b], delta)
+        eqe += np.einsum("k,kv,kv->v", bins.corner_weights[b], rows[p:], rows[p:])
+        # d' X'QX d element-wise (the same products for a voxel whatever the others)
+        info_delta = bins.information[b, :, 0, None] * delta[0]
+        for j in range(1, p):
+            info_delta += bins.information[b, :, j, None] * delta[j]
+        rss[cols] = eqe - np.einsum("iv,iv->v", delta, info_delta)
         beta[:, cols] = b_gls
     _settle_spikes(design, Y[design.spike_rows], beta)
     return WhitenedBlock(beta=beta, residual_variance=np.maximum(rss, 0.0) / design.dof)

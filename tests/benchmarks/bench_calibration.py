@@ -153,7 +153,7 @@ def section_power(grid: tuple[int, int, int]) -> None:
         X, roles = ch.make_design(kind, tr)
         Y = ch.simulate_noise(noise, X.shape[0], v, rng)
         signal = (np.arange(v) % 2).astype(bool)
-        effect = 0.35 if kind == "block" else 0.6
+        effect = 0.6 if kind == "block" else 1.5
         Y[:, signal] += effect * X[:, [0]]
         Y = (100.0 + Y).astype(np.float32)
         for model in ("arp", "ar1"):
@@ -165,8 +165,9 @@ def section_power(grid: tuple[int, int, int]) -> None:
 
 def section_edge(grid: tuple[int, int, int]) -> None:
     print("\n## A patch of AR(1) 0.5 noise in AR(1) 0.1 noise (TR 2 s block, 5 mm smoothing)\n")
-    print("| tissue map | model | patch: p<0.001 | border (2 voxels): p<0.001 | outside: p<0.001 | patch: p<0.05 |")
-    print("|---|---|---|---|---|---|")
+    print("| tissue map | model | patch: p<0.001 | border (2 voxels): p<0.001 | outside: p<0.001 | patch: p<0.05 "
+          "| lag-1 of the models: patch border (inside) / outside border |")
+    print("|---|---|---|---|---|---|---|")
     shape = grid
     v = int(np.prod(shape))
     ii = np.indices(shape)
@@ -187,8 +188,11 @@ def section_edge(grid: tuple[int, int, int]) -> None:
             res = ch.fit_cell(Y, X, roles, model, shape, classes=patch.astype(np.int64) if tissue else None)
             p = 2.0 * scipy.stats.t.sf(np.abs(res.t["A-B"]), res.dof)
             cells = [f"{np.mean(p[m] < 0.001):.5f} ({int(m.sum())})" for m in (patch & ~border, border, ~patch & ~border)]
+            rho = res.fit.bin_rho[res.fit.bin]
+            inner, outer = border & patch, border & ~patch
             print(f"| {'yes' if tissue else 'no'} | {model} | " + " | ".join(cells)
-                  + f" | {np.mean(p[patch & ~border] < 0.05):.4f} |", flush=True)
+                  + f" | {np.mean(p[patch & ~border] < 0.05):.4f} | {rho[inner].mean():.3f} / {rho[outer].mean():.3f} |",
+                  flush=True)
 
 
 def main() -> None:

@@ -112,7 +112,7 @@ def write_run(folder: Path, shape: tuple[int, int, int], kind: str) -> dict[str,
     nib.save(nib.Nifti1Image(mask.astype(np.uint8), affine), folder / "mask.nii.gz")
     pd.DataFrame(X, columns=names).to_csv(folder / "design.tsv", sep="\t", index=False)
     (folder / "design.json").write_text(json.dumps({
-        "names": names, "roles": roles, "conditions": ["a", "b"], "basis": ["main", "main"] + [""] * 11,
+        "names": names, "roles": roles, "conditions": ["a", "b"] + [""] * 11, "basis": ["main", "main"] + [""] * 11,
         "first_volume": 0, "n_volumes": N_VOL, "excluded": False}))
     return {"bold": str(path), "mask": str(folder / "mask.nii.gz"), "design": str(folder / "design.tsv"),
             "design_summary": str(folder / "design.json")}
