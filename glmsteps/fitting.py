@@ -219,17 +219,17 @@ def estimate_noise(lag_products: npt.NDArray[np.float64], design: est.DesignFact
 
 def _bin_models(design: est.DesignFactors, acf: npt.NDArray[np.float64], noise: NoiseSettings,
                 grid: VoxelGrid) -> tuple[npt.NDArray[np.int32], est.NoiseBins]:
-    """Bins on the smoothed lag-1 autocorrelation (within classes) and each bin's whitening.
+    """Smoothing (within classes), bins on the smoothed lag 1 and each bin's whitening.
 
-    Only lag 1 is smoothed: it decides the bin, and the bin's model is the mean over its voxels,
-    which averages the higher lags as much as smoothing them first would.
+    Every lag is smoothed before binning. (Smoothing lag 1 only and averaging the unsmoothed higher
+    lags over each bin is not the same: the bins select voxels by their own lag-1 noise, which the
+    unsmoothed higher lags share, and the bin models' AR coefficients come out biased by several
+    Monte-Carlo SE; ``tests/test_calibration.py`` catches it.)
     """
-    lag1 = est.smooth_voxel_values(acf[:1], grid.flat_index, grid.shape, noise.smoothing_fwhm_mm,
-                                   grid.voxel_size_mm, grid.classes)
-    bin_index, centres = est.assign_bins(lag1[0], noise.bin_width, grid.classes)
-    clipped = np.clip(acf, -est.MAX_ABS_RHO, est.MAX_ABS_RHO)
-    clipped[0] = np.clip(lag1[0], -est.MAX_ABS_RHO, est.MAX_ABS_RHO)
-    means = est.bin_means(clipped, bin_index, centres.size)
+    smoothed = est.smooth_voxel_values(acf, grid.flat_index, grid.shape, noise.smoothing_fwhm_mm,
+                                       grid.voxel_size_mm, grid.classes)
+    bin_index, centres = est.assign_bins(smoothed[0], noise.bin_width, grid.classes)
+    means = est.bin_means(np.clip(smoothed, -est.MAX_ABS_RHO, est.MAX_ABS_RHO), bin_index, centres.size)
     if noise.model == "ar1":
         return bin_index, est.prepare_bins(design, means[:, 0])
     return bin_index, est.prepare_bins(design, means[:, 0], means)

@@ -130,15 +130,19 @@ def test_uncorrected_ratio_bias_would_be_detected() -> None:
 
 
 # family 4: sensitivity at a fixed true false-positive rate, 2 cases x 2 rates = 4 one-sided checks
-POWER_CASES = [("AR(1) 0.8 + white", "block", 2.0, 0.45), ("AR(1) 0.5", "event", 2.0, 1.2)]
+POWER_CASES = [("AR(1) 0.8 + white", "block", 2.0, 0.45, 0.0), ("AR(1) 0.5", "event", 2.0, 1.2, 0.01)]
 Z_POWER = float(scipy.stats.norm.isf(0.05 / 4))
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("noise, design, tr_s, effect", POWER_CASES)
-def test_default_model_is_at_least_as_sensitive_as_ar1(noise: str, design: str, tr_s: float, effect: float) -> None:
+@pytest.mark.parametrize("noise, design, tr_s, effect, margin", POWER_CASES)
+def test_default_model_is_at_least_as_sensitive_as_ar1(noise: str, design: str, tr_s: float, effect: float,
+                                                       margin: float) -> None:
     # half the voxels carry a planted effect on A; the threshold of each model is the quantile of its own
-    # null voxels that gives the true false-positive rate, so the comparison is at equal true FPR
+    # null voxels that gives the true false-positive rate, so the comparison is at equal true FPR.
+    # On AR(1) plus white noise (AR(1) misspecified) the default must be at least as sensitive; on AR(1)
+    # noise, where AR(1) is the true model, it can only match it, and is allowed to fall short by at most
+    # 1 % of AR(1)'s sensitivity (measured: 0.5 % at true FPR 0.05, tests/benchmarks/bench_calibration.py)
     rng = np.random.default_rng(400)
     X, roles = ch.make_design(design, tr_s)
     Y = ch.simulate_noise(noise, X.shape[0], V, rng)
@@ -153,7 +157,8 @@ def test_default_model_is_at_least_as_sensitive_as_ar1(noise: str, design: str, 
         diff = hits["arp"][k].astype(float) - hits["ar1"][k].astype(float)
         # paired difference of the two models on the same voxels; its SE from the voxels
         se = diff.std() / np.sqrt(diff.size)
-        assert diff.mean() > -Z_POWER * se, (k, hits["arp"][k].mean(), hits["ar1"][k].mean())
+        assert diff.mean() > -Z_POWER * se - margin * hits["ar1"][k].mean(), \
+            (k, hits["arp"][k].mean(), hits["ar1"][k].mean())
 
 
 @pytest.mark.slow
