@@ -227,9 +227,10 @@ def _bin_models(design: est.DesignFactors, acf: npt.NDArray[np.float64], noise: 
     Monte-Carlo SE; ``tests/test_calibration.py`` catches it.)
     """
     smoothed = est.smooth_voxel_values(acf, grid.flat_index, grid.shape, noise.smoothing_fwhm_mm,
-                                       grid.voxel_size_mm, grid.classes)
+                                       grid.voxel_size_mm, grid.classes, out=acf)       # in place
     bin_index, centres = est.assign_bins(smoothed[0], noise.bin_width, grid.classes)
-    means = est.bin_means(np.clip(smoothed, -est.MAX_ABS_RHO, est.MAX_ABS_RHO), bin_index, centres.size)
+    np.clip(smoothed, -est.MAX_ABS_RHO, est.MAX_ABS_RHO, out=smoothed)
+    means = est.bin_means(smoothed, bin_index, centres.size)
     if noise.model == "ar1":
         return bin_index, est.prepare_bins(design, means[:, 0])
     return bin_index, est.prepare_bins(design, means[:, 0], means)
@@ -315,8 +316,10 @@ def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], col
         return VoxelFit(beta=beta64.astype(np.float32), residual_variance=resvar,
                         ar_coef=np.zeros((v, 1), dtype=np.float32), lag1=lag1, bin=np.zeros(v, dtype=np.int32),
                         bin_rho=np.zeros(1), bin_covariance=cov, order=0)
-    bin_index, bins = _bin_models(design, estimate.acf, noise, grid)
+    acf = estimate.acf
     del estimate
+    bin_index, bins = _bin_models(design, acf, noise, grid)
+    del acf
     beta = np.empty((p, v), dtype=np.float32)
     resvar = np.empty(v, dtype=np.float32)
 

@@ -292,7 +292,8 @@ def _normalise(x: FloatArray) -> FloatArray:
     """``x[1:] / x[0]`` with non-finite results set to 0."""
     with np.errstate(divide="ignore", invalid="ignore"):
         r = x[1:] / x[0]
-    return np.where(np.isfinite(r), r, 0.0)
+    r[~np.isfinite(r)] = 0.0
+    return r
 
 
 def _lag_solvers(moments: FloatArray, rho: FloatArray, bias: FloatArray) -> FloatArray:
@@ -472,7 +473,10 @@ def estimate_autocorrelation(lag_products: npt.NDArray[np.floating], design: Des
     K = _lag_solvers(moments, rho, bias)
     # (K (1, q))_(1:) / (K (1, q))_0 is not linear in q: remove its curvature bias at the group's ratios
     curvature = _curvature_bias(K, np.vstack([np.ones(counts.size), mean_ratios]), cov)
-    acf = _normalise(apply_group_matrices(K, group, a)) - curvature[:, group]
+    x = apply_group_matrices(K, group, a)
+    acf = _normalise(x)
+    del x
+    acf -= curvature[:, group]
     return AutocorrelationEstimate(acf=acf, group=group, reference=reference)
 
 

@@ -18,6 +18,8 @@ ScalingMethod = Literal["percent", "grand_mean", "none"]
 
 #: The voxel axis of every matrix product is padded to a multiple of this width.
 _COLUMN_BLOCK = 64
+#: Voxels per block of :func:`apply_group_matrices` (work memory only; results do not depend on it).
+_GROUP_BLOCK = 65536
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -80,15 +82,17 @@ def apply_group_matrices(matrices: FloatArray, group: npt.NDArray[np.integer], Z
     """
     group = np.asarray(group)
     out = np.empty((matrices.shape[1], Z.shape[1]))
-    order = np.argsort(group, kind="stable")
-    Zs = np.ascontiguousarray(np.asarray(Z, dtype=np.float64)[:, order])
-    keys, starts = np.unique(group[order], return_index=True)
-    for b, lo, hi in zip(keys, starts, np.r_[starts[1:], group.size]):
-        Zb = Zs[:, lo:hi]
-        acc = matrices[b, :, 0, None] * Zb[0]
-        for j in range(1, matrices.shape[2]):
-            acc += matrices[b, :, j, None] * Zb[j]
-        out[:, order[lo:hi]] = acc
+    for start in range(0, group.size, _GROUP_BLOCK):      # bounded work memory for whole-brain arrays
+        part = slice(start, min(start + _GROUP_BLOCK, group.size))
+        order = np.argsort(group[part], kind="stable")
+        Zs = np.asarray(Z[:, part], dtype=np.float64)[:, order]
+        keys, starts = np.unique(group[part][order], return_index=True)
+        for b, lo, hi in zip(keys, starts, np.r_[starts[1:], order.size]):
+            Zb = Zs[:, lo:hi]
+            acc = matrices[b, :, 0, None] * Zb[0]
+            for j in range(1, matrices.shape[2]):
+                acc += matrices[b, :, j, None] * Zb[j]
+            out[:, start + order[lo:hi]] = acc
     return out
 
 

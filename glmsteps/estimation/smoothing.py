@@ -59,7 +59,8 @@ def convolve_axis(values: FloatArray, weights: FloatArray, axis: int) -> FloatAr
 
 def smooth_voxel_values(values: npt.NDArray[np.floating], flat_index: npt.NDArray[np.integer],
                         shape: tuple[int, int, int], fwhm_mm: float, voxel_size_mm: npt.ArrayLike,
-                        classes: npt.NDArray[np.integer] | None = None) -> FloatArray:
+                        classes: npt.NDArray[np.integer] | None = None,
+                        out: FloatArray | None = None) -> FloatArray:
     """Smooth per-voxel values within the fitted voxels, and within tissue classes when given.
 
     Parameters
@@ -75,6 +76,8 @@ def smooth_voxel_values(values: npt.NDArray[np.floating], flat_index: npt.NDArra
     classes : ndarray of int, shape (n_voxels,), optional
         Tissue class of each voxel. A voxel's smoothed value is then a
         weighted mean over the voxels of its own class only.
+    out : ndarray, shape (k, n_voxels), float64, optional
+        Where to write the result (may be ``values`` itself: rows are smoothed one at a time).
 
     Returns
     -------
@@ -94,14 +97,16 @@ def smooth_voxel_values(values: npt.NDArray[np.floating], flat_index: npt.NDArra
     """
     values = np.atleast_2d(np.asarray(values, dtype=np.float64))
     flat = np.asarray(flat_index, dtype=np.int64)
+    if out is None:
+        out = np.empty_like(values)
     if fwhm_mm <= 0 or values.shape[1] == 0:
-        return values.copy()
+        out[...] = values
+        return out
     k = values.shape[0]
     shape = tuple(int(x) for x in shape)
     sigma = fwhm_mm / math.sqrt(8.0 * math.log(2.0)) / np.asarray(voxel_size_mm, dtype=np.float64)
     kernels = [gaussian_kernel(float(s)) for s in sigma]
     labels = np.zeros(flat.size, dtype=np.int64) if classes is None else np.asarray(classes, dtype=np.int64)
-    out = np.empty_like(values)
 
     def convolve(grid: FloatArray) -> FloatArray:
         for axis, w in enumerate(kernels):
