@@ -423,7 +423,7 @@ def fit_arp_summary(design: DesignFactors, Y: npt.NDArray[np.floating], lag_prod
     Notes
     -----
     Per bin, with ``W`` the exact AR whitening (:func:`whiten_ar`) and
-    ``Q = W' W``: ``beta = pinv(W X) W y`` (``bins.gls_operator``), and with the
+    ``Q = W' W``: ``beta = pinv(W X) W y`` (rows of ``bins.refit_operator``), and with the
     OLS estimate ``beta_o`` and residual ``e = y - X beta_o`` the whitened
     residual sum of squares is ``e'Qe - d' X'QX d``, ``d = beta - beta_o``
     (GLS, e.g. Seber & Lee (2003) *Linear Regression Analysis*, sec. 3.10).
@@ -439,7 +439,6 @@ def fit_arp_summary(design: DesignFactors, Y: npt.NDArray[np.floating], lag_prod
     lag_products = np.asarray(lag_products, dtype=np.float64)
     bin_index = np.asarray(bin_index)
     p, v = design.X.shape[1], Y.shape[1]
-    P = bins.band.shape[1] - 1
     beta = np.empty((p, v))
     rss = np.empty(v)
     beta_ols = multiply_columns(design.pinv, Y)
