@@ -62,7 +62,7 @@ def _check_names(kind, names):
 def discovered_runs():
     """Runs found by matching the bold pattern on disk (file names only, no image is opened)."""
     try:
-        for key in ("bold", "events", "confounds", "mask"):
+        for key in ("bold", "events", "confounds", "mask") + (("tissue",) if _INPUTS["tissue"] else ()):
             check_pattern(key, _INPUTS[key])
         runs = discover_runs(_INPUTS["root"], _INPUTS["bold"])
     except ConfigError as exc:
@@ -173,6 +173,11 @@ def mask_file(wildcards):
     return _raw("mask", wildcards)
 
 
+def tissue_file(wildcards):
+    """Tissue label map of a run (inputs.tissue), or no file when the config has none."""
+    return [_raw("tissue", wildcards)] if _INPUTS["tissue"] else []
+
+
 def participants_file():
     """The BIDS participants table."""
     return os.path.join(_INPUTS["root"], _INPUTS["participants"])
@@ -265,11 +270,13 @@ def design_params():
 
 @_canonical_params
 def fit_params():
-    """fit: scaling and autocorrelation model (chunk size and threads do not change results)."""
+    """fit: scaling, noise model and non-finite voxel policy (chunk size and threads do not change results;
+    the tissue map is an input)."""
     f = config["fit"]
     return {"scaling": f["scaling"], "grand_mean_value": f["grand_mean_value"], "autocorrelation": f["autocorrelation"],
             "ar_order": f["ar_order"], "ar_smoothing_fwhm_mm": f["ar_smoothing_fwhm_mm"],
-            "ar_bin_width": f["ar_bin_width"], "repetition_time_s": config["acquisition"]["repetition_time_s"]}
+            "ar_bin_width": f["ar_bin_width"], "non_finite_voxels": f["non_finite_voxels"],
+            "repetition_time_s": config["acquisition"]["repetition_time_s"]}
 
 
 def _contrast_params(name):

@@ -2,6 +2,7 @@ rule fit:
     input:
         bold=bold_file,
         mask=mask_file,
+        tissue=tissue_file,
         design=RUN_DIR + "/design.tsv",
         design_summary=RUN_DIR + "/design.json",
     output:

@@ -3,21 +3,25 @@
 Inputs (named)
     ``bold`` (4D NIfTI), ``mask`` (3D NIfTI on the BOLD grid), ``design`` (TSV,
     one column per regressor, one row per kept volume), ``design_summary``
-    (JSON with ``names``, ``roles``, ``conditions``, ``basis``,
-    ``first_volume``, ``n_volumes``, ``excluded``).
+    (JSON with per-column ``names``, ``roles``, ``conditions``, ``basis``, and
+    ``first_volume``, ``n_volumes``, ``excluded``); optional ``tissue`` (3D
+    NIfTI of integer tissue labels on the BOLD grid, 0 = unlabelled).
 Params
     ``scaling`` (percent | grand_mean | none), ``grand_mean_value``,
-    ``autocorrelation`` (ols | ar1 | arp), ``ar_order`` (1..4),
-    ``ar_smoothing_fwhm_mm`` (>= 0), ``ar_bin_width``, ``repetition_time_s``.
+    ``autocorrelation`` (ols | ar1 | arp), ``ar_order`` (1..12),
+    ``ar_smoothing_fwhm_mm`` (>= 0), ``ar_bin_width``, ``non_finite_voxels``
+    (error | drop), ``repetition_time_s``. Missing keys take the defaults of
+    ``config/schema.yaml`` (``DEFAULTS``).
 Outputs (named)
     ``fit`` (fit.h5, sidecar fit.json), ``mean``, ``residual_sd``, ``ar_coef``
     (NIfTI, each with its sidecar).
 
-Everything a user can get wrong is checked before any file is written. The
-BOLD is read once, streamed and masked (``glmsteps.volumes``); its bytes are
-hashed on the way and that hash goes into the provenance record. The voxel
-loop runs in chunks of ``GLMSTEPS_CHUNK_VOXELS`` voxels (environment variable,
-default 4096); results do not depend on the chunk size.
+Read, fit (``glmsteps.fitting.fit_voxels``), write. Everything a user can get
+wrong is checked before any file is written. The BOLD is read once, streamed
+and masked (``glmsteps.volumes``); its bytes are hashed on the way and that
+hash goes into the provenance record. The voxels are fitted in chunks of
+``GLMSTEPS_CHUNK_VOXELS`` voxels (environment variable, default 4096 shared by
+the job's threads); results do not depend on the chunk size.
 """
 
 from __future__ import annotations
@@ -26,10 +30,9 @@ import logging
 import os
 import time
 import warnings
-from collections.abc import Callable, Mapping
-from concurrent.futures import ThreadPoolExecutor
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 import numpy.typing as npt
@@ -40,13 +43,19 @@ from ..bids import parse_run_id
 from ..errors import ConfigError, DataError, DesignError, GlmstepsWarning
 from ..fileio import read_json, read_numeric_tsv
 from ..fitstore import StoredFit, write_fit
+from ..fitting import NoiseSettings, VoxelFit, VoxelGrid, fit_voxels
 from ..maps import save_map
-from ..volumes import check_grid, check_repetition_time, read_bold_header, read_mask, stream_masked
+from ..volumes import (AFFINE_TOLERANCE_MM, check_grid, check_repetition_time, read_bold_header, read_mask,
+                       stream_masked)
 
 STEP = "fit"
 #: Default number of voxels per chunk (override with the GLMSTEPS_CHUNK_VOXELS environment variable).
 DEFAULT_CHUNK_VOXELS = 4096
 _SUMMARY_KEYS = ("names", "roles", "conditions", "basis", "first_volume", "n_volumes", "excluded")
+#: Defaults of the step's params: those of the ``fit`` section of config/schema.yaml (``tests/test_jobs_fit.py``).
+DEFAULTS: dict[str, Any] = {"scaling": "percent", "grand_mean_value": 100.0, "autocorrelation": "arp", "ar_order": 8,
+                            "ar_smoothing_fwhm_mm": 5.0, "ar_bin_width": 0.01, "non_finite_voxels": "error"}
+NonFinitePolicy = Literal["error", "drop"]
 
 logger = logging.getLogger("glmsteps")
 
@@ -61,28 +70,32 @@ class FitSettings:
     ar_order: int
     ar_smoothing_fwhm_mm: float
     ar_bin_width: float
+    non_finite_voxels: NonFinitePolicy
     repetition_time_s: float
 
 
 def check_params(params: Mapping[str, Any]) -> FitSettings:
-    """Check the step's params; missing keys take their defaults.
+    """Check the step's params; missing keys take their defaults (``DEFAULTS``).
 
     Raises
     ------
     ConfigError
     """
-    p = dict(params)
-    scaling = p.get("scaling", "percent")
+    p = {**DEFAULTS, **dict(params)}
+    scaling = p["scaling"]
     if scaling not in ("percent", "grand_mean", "none"):
         raise ConfigError(f"config fit.scaling: expected percent, grand_mean or none, found {scaling!r}")
-    noise = p.get("autocorrelation", "ar1")
+    noise = p["autocorrelation"]
     if noise not in ("ols", "ar1", "arp"):
         raise ConfigError(f"config fit.autocorrelation: expected ols, ar1 or arp, found {noise!r}")
+    policy = p["non_finite_voxels"]
+    if policy not in ("error", "drop"):
+        raise ConfigError(f"config fit.non_finite_voxels: expected error or drop, found {policy!r}")
     try:
-        gm = float(p.get("grand_mean_value", 100.0))
-        order = int(p.get("ar_order", 1))
-        fwhm = float(p.get("ar_smoothing_fwhm_mm", 0.0))
-        width = float(p.get("ar_bin_width", 0.01))
+        gm = float(p["grand_mean_value"])
+        order = int(p["ar_order"])
+        fwhm = float(p["ar_smoothing_fwhm_mm"])
+        width = float(p["ar_bin_width"])
         tr = float(p["repetition_time_s"])
     except KeyError as exc:
         raise ConfigError("config repetition_time_s: missing; set the TR of the runs in seconds") from exc
@@ -100,7 +113,7 @@ def check_params(params: Mapping[str, Any]) -> FitSettings:
         raise ConfigError(f"config repetition_time_s: expected a positive number of seconds, found {tr}")
     return FitSettings(scaling=scaling, grand_mean_value=gm, autocorrelation=noise,
                        ar_order=order if noise == "arp" else 1, ar_smoothing_fwhm_mm=fwhm, ar_bin_width=width,
-                       repetition_time_s=tr)
+                       non_finite_voxels=policy, repetition_time_s=tr)
 
 
 def chunk_voxels(threads: int = 1) -> int:
@@ -134,22 +147,6 @@ class DesignInput:
     excluded: bool
 
 
-def _column_condition(name: str, conditions: list[str]) -> str:
-    for cond in sorted(conditions, key=len, reverse=True):
-        if name == cond or name.startswith(cond + "__"):
-            return cond
-    return ""
-
-
-def _column_basis(name: str, cond: str) -> str:
-    if not cond:
-        return ""
-    if name == cond:
-        return "main"
-    suffix = name[len(cond) + 2:]
-    return "modulator" if suffix.startswith("x_") else suffix
-
-
 def read_design(design_path: str, summary_path: str) -> DesignInput:
     """Read and check the design TSV and its summary JSON.
 
@@ -179,11 +176,14 @@ def read_design(design_path: str, summary_path: str) -> DesignInput:
     if bad.size:
         r, c = bad[0]
         raise DataError(f"{design_path}: row {r + 1}, column {names[c]}: value is not finite; rerun build_design")
-    conds = [str(c) for c in summary["conditions"]]
-    conditions = [_column_condition(n, conds) for n in names]
-    basis_in = summary["basis"]
-    basis = ([str(b) if b is not None else "" for b in basis_in] if isinstance(basis_in, list)
-             and len(basis_in) == len(names) else [_column_basis(n, c) for n, c in zip(names, conditions)])
+    columns_of = {}
+    for key in ("conditions", "basis"):
+        value = summary[key]
+        if not isinstance(value, list) or len(value) != len(names):
+            raise DataError(f"{summary_path}: {key} must list one entry per design column ({len(names)}), "
+                            f"found {value!r:.60}; rerun build_design")
+        columns_of[key] = [str(c) if c is not None else "" for c in value]
+    conditions, basis = columns_of["conditions"], columns_of["basis"]
     first, n_vol = int(summary["first_volume"]), int(summary["n_volumes"])
     excluded = bool(summary["excluded"])
     if not excluded and X.shape[0] != n_vol - first:
@@ -194,191 +194,50 @@ def read_design(design_path: str, summary_path: str) -> DesignInput:
 
 
 # ---------------------------------------------------------------------------
-# the chunked fit (I/O layer: the loop over voxels lives here)
+# tissue classes
 # ---------------------------------------------------------------------------
 
-@dataclass(frozen=True)
-class VoxelFit:
-    """Per-voxel results of :func:`fit_voxels` (v fitted voxels)."""
-
-    beta: npt.NDArray[np.float32]                 # (p, v)
-    residual_variance: npt.NDArray[np.float32]    # (v,)
-    ar_coef: npt.NDArray[np.float32]              # (v, order), zeros for OLS
-    lag1: npt.NDArray[np.float32]                 # (v,) corrected lag-1 autocorrelation (QC map)
-    bin: npt.NDArray[np.int32]                    # (v,)
-    bin_rho: npt.NDArray[np.float64]              # (b,)
-    bin_covariance: npt.NDArray[np.float64]       # (b, p, p)
-    order: int
+def _optional_input(inputs: Mapping[str, str | list[str]], key: str) -> str | None:
+    """An optional named input: absent, ``""`` or an empty list mean not given."""
+    value = inputs.get(key)
+    if isinstance(value, list):
+        if len(value) > 1:
+            raise ConfigError(f"rule fit: input {key!r} must be one file, found {len(value)}")
+        value = value[0] if value else None
+    return str(value) if value else None
 
 
-def _log_progress(label: str, done: int, total: int, start: float) -> None:
-    elapsed = time.perf_counter() - start
-    left = elapsed / done * (total - done) if done else float("nan")
-    logger.info("%s: %d/%d voxels, %.1f s elapsed, about %.1f s left", label, done, total, elapsed, left)
+def read_tissue(path: str, bold: Any) -> npt.NDArray[np.int64]:
+    """Read a tissue label map on the BOLD grid (integer labels >= 0; 0 = unlabelled).
 
-
-def _for_each_chunk(work: Callable[[int], slice], starts: range, threads: int, label: str, total: int) -> None:
-    """Call ``work(start)`` for every chunk start, logging progress.
-
-    With ``threads`` > 1 the chunks run in a pool of that many threads: each
-    chunk writes its own columns of preallocated arrays, and numpy releases the
-    GIL in its matrix products and element-wise loops, so chunks overlap. Each
-    chunk's arithmetic is the same whatever the pool, so the results are too.
-    Progress is logged in chunk order.
-
-    Snakemake gives a job's BLAS as many threads as the job has
-    (``OPENBLAS_NUM_THREADS``); inside the pool each product runs on one BLAS
-    thread instead, or the pool's threads and BLAS's fight over the cores
-    (measured on the 64x64x40x300 benchmark run: fit phase 0.23 s with one
-    BLAS thread per chunk, 0.41-0.50 s with two).
+    Raises
+    ------
+    DataError
+        If the file cannot be read, is not 3D on the BOLD grid, or holds values that are not
+        whole numbers from 0 to 999.
     """
-    t0 = time.perf_counter()
-    if threads <= 1 or len(starts) < 2:
-        for s in starts:
-            _log_progress(label, work(s).stop, total, t0)
-        return
-    from threadpoolctl import threadpool_limits
+    import nibabel as nib
 
-    with threadpool_limits(limits=1, user_api="blas"), \
-            ThreadPoolExecutor(max_workers=threads, thread_name_prefix="glmsteps-fit") as pool:
-        for sl in pool.map(work, starts):
-            _log_progress(label, sl.stop, total, t0)
-
-
-def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], columns: npt.NDArray[np.integer],
-               factors: npt.NDArray[np.floating],
-               design: est.DesignFactors, settings: FitSettings, order: int, chunk: int,
-               fitted_mask: npt.NDArray[np.bool_] | None = None,
-               voxel_size_mm: npt.ArrayLike = (1.0, 1.0, 1.0),
-               flat_index: npt.NDArray[np.integer] | None = None, threads: int = 1) -> VoxelFit:
-    """Fit the voxels ``Y[:, columns]`` chunk by chunk.
-
-    Parameters
-    ----------
-    Y : ndarray, shape (n_scans, n_voxels_in_mask), float32, or a one-element list holding it
-        Unscaled signal. Given in a list, the array is taken out of the list and
-        released as soon as it is no longer needed (after the first pass for
-        OLS and AR(1)), so that smoothing and writing run without it in memory.
-    columns : ndarray of int, shape (v,)
-        Columns of ``Y`` to fit, in voxel order.
-    factors : ndarray, shape (v,)
-        Scale factors of those voxels (``estimation.compute_scale_factors``).
-    design : DesignFactors
-    settings : FitSettings
-    order : int
-        AR order (checked with ``estimation.check_ar_order``).
-    chunk : int
-        Voxels per chunk.
-    fitted_mask : ndarray of bool, shape (nx, ny, nz), optional
-        Grid positions of the fitted voxels; required when smoothing the AR
-        estimates.
-    voxel_size_mm : array_like, shape (3,)
-    flat_index : ndarray of int, shape (v,), optional
-        C-order flat grid index of each fitted voxel, in the order of
-        ``columns``; by default the voxels of ``fitted_mask`` in C order.
-    threads : int
-        Chunks fitted side by side (see :func:`_for_each_chunk`); results do
-        not depend on it.
-
-    Returns
-    -------
-    VoxelFit
-    """
-    if isinstance(Y, list):
-        Y = Y.pop()
-    v = columns.size
-    n, p = design.X.shape
-    model = settings.autocorrelation
-    max_lag = order if model == "arp" else 1
-    starts = range(0, v, chunk)
-
-    def block(s: int) -> tuple[slice, npt.NDArray[np.float64]]:
-        sl = slice(s, min(s + chunk, v))
-        cols = columns[sl]
-        # nearly always the fitted columns of a chunk are contiguous: slice instead of gathering
-        data = Y[:, cols[0]:cols[-1] + 1] if cols[-1] - cols[0] + 1 == cols.size else Y[:, cols]
-        return sl, np.multiply(data, factors[sl], dtype=np.float64)
-
-    beta = np.empty((p, v), dtype=np.float32)
-    resvar = np.empty(v, dtype=np.float32)
-    if model == "ar1":
-        # AR(1): keep the OLS sufficient statistics, so the refit needs no second pass over the data
-        lag_design_products = np.empty((p, v), dtype=np.float32)
-        ends = np.empty((4, v))                          # e_first, e_last, e0, e1
-        y_censored = np.empty((design.spike_rows.size, v))
-    else:
-        lag = np.empty((max_lag + 1, v))
-
-    def first_pass(s: int) -> slice:
-        sl, Yc = block(s)
-        ols = est.fit_ols(design, Yc)
-        if model == "ar1":
-            summ = est.summarise_residuals(design, ols.residuals)
-            beta[:, sl] = ols.beta
-            lag_design_products[:, sl] = summ.lag_design_products
-            ends[:, sl] = (summ.e_first, summ.e_last, summ.e0, summ.e1)
-            y_censored[:, sl] = Yc[design.spike_rows]
-        else:
-            lag[:, sl] = est.compute_lag_products(ols.residuals, max_lag)
-        if model == "ols":
-            beta[:, sl] = ols.beta
-            resvar[sl] = ols.residual_variance
-        return sl
-
-    _for_each_chunk(first_pass, starts, threads, "fit pass 1 (OLS)", v)
-    if model == "ar1":
-        lag = np.stack([ends[2], 2.0 * ends[3]])
-    if model != "arp":
-        Y = None  # not needed any more: let the caller's data go
-    if model == "arp":
-        acf = est.correct_autocorrelation(lag, est.compute_bias_matrix(design.X, max_lag))
-    else:
-        acf = est.correct_ar1(lag, est.compute_ar1_correction(design.X))[None, :]
-    lag1 = np.clip(acf[0], -est.MAX_ABS_RHO, est.MAX_ABS_RHO)
-    if model == "ols":
-        cov = (design.pinv @ design.pinv.T)[None]
-        return VoxelFit(beta=beta, residual_variance=resvar, ar_coef=np.zeros((v, 1), dtype=np.float32),
-                        lag1=lag1.astype(np.float32), bin=np.zeros(v, dtype=np.int32), bin_rho=np.zeros(1),
-                        bin_covariance=cov, order=0)
-    if settings.ar_smoothing_fwhm_mm > 0:
-        if fitted_mask is None:
-            raise ValueError("fitted_mask is required to smooth the AR estimates")
-        flat = np.flatnonzero(fitted_mask) if flat_index is None else np.asarray(flat_index)
-        for k in range(acf.shape[0]):
-            grid = np.zeros(fitted_mask.shape)
-            grid.flat[flat] = acf[k]
-            acf[k] = est.smooth_within_mask(grid, fitted_mask, settings.ar_smoothing_fwhm_mm, voxel_size_mm).flat[flat]
-    bin_index, bin_rho = est.assign_bins(acf[0], settings.ar_bin_width)
-    if model == "ar1":
-        bins = est.prepare_bins(design, bin_rho)
-        ar_coef = np.clip(acf[0], -est.MAX_ABS_RHO, est.MAX_ABS_RHO)[:, None]
-    else:
-        phi, _, _ = est.levinson_durbin(acf)
-        ar_coef = phi.T
-        counts = np.bincount(bin_index, minlength=bin_rho.size)
-        bin_acf = np.empty((bin_rho.size, order))
-        for k in range(order):
-            bin_acf[:, k] = np.bincount(bin_index, weights=acf[k], minlength=bin_rho.size) / np.maximum(counts, 1)
-        bin_acf[:, 0] = bin_rho
-        bins = est.prepare_bins(design, bin_rho, bin_acf)
-
-    def second_pass(s: int) -> slice:
-        if model == "ar1":
-            sl = slice(s, min(s + chunk, v))
-            summ = est.Ar1Summary(lag_design_products=lag_design_products[:, sl], e_first=ends[0, sl],
-                                  e_last=ends[1, sl], e0=ends[2, sl], e1=ends[3, sl])
-            w = est.fit_ar1_summary(design, beta[:, sl], summ, y_censored[:, sl], bin_index[sl], bins)
-        else:
-            sl, Yc = block(s)
-            w = est.fit_arp_block(design, Yc, bin_index[sl], bins)
-        beta[:, sl] = w.beta
-        resvar[sl] = w.residual_variance
-        return sl
-
-    _for_each_chunk(second_pass, starts, threads, f"fit pass 2 ({model} refit, {bin_rho.size} bins)", v)
-    return VoxelFit(beta=beta, residual_variance=resvar, ar_coef=ar_coef.astype(np.float32),
-                    lag1=lag1.astype(np.float32), bin=bin_index, bin_rho=bin_rho, bin_covariance=bins.covariance,
-                    order=order)
+    try:
+        img = nib.load(path)
+        data = np.asarray(img.dataobj, dtype=np.float64)
+    except Exception as exc:  # nibabel raises many kinds for a bad file
+        raise DataError(f"{path}: cannot read the tissue map ({exc}); pass a NIfTI label map") from exc
+    if data.ndim == 4 and data.shape[3] == 1:
+        data = data[..., 0]
+    if data.shape != tuple(bold.shape[:3]):
+        raise DataError(f"{path}: tissue map grid {data.shape} differs from BOLD grid {bold.shape[:3]} of "
+                        f"{bold.path}; resample the tissue map to the BOLD (nearest neighbour)")
+    diff = float(np.max(np.abs(np.asarray(img.affine, dtype=np.float64) - bold.affine)))
+    if diff > AFFINE_TOLERANCE_MM:
+        raise DataError(f"{path}: tissue map affine differs from the BOLD affine of {bold.path} by up to "
+                        f"{diff:.4g} mm (tolerance {AFFINE_TOLERANCE_MM} mm); resample the tissue map to the BOLD")
+    bad = ~np.isfinite(data) | (data != np.round(data)) | (data < 0) | (data > 999)
+    if bad.any():
+        i = tuple(int(x) for x in np.argwhere(bad)[0])
+        raise DataError(f"{path}: voxel {i} of the tissue map is {data[i]!r}, expected a whole-number label from "
+                        "0 to 999 (0 = unlabelled); pass a label map, not probabilities")
+    return data.astype(np.int64)
 
 
 # ---------------------------------------------------------------------------
@@ -448,6 +307,9 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
             raise ConfigError(f"rule fit: output {key!r} is missing; name the outputs fit, mean, residual_sd, ar_coef")
     bold_path, mask_path = str(inputs["bold"]), str(inputs["mask"])
     in_paths = {k: str(inputs[k]) for k in ("bold", "mask", "design", "design_summary")}
+    tissue_path = _optional_input(inputs, "tissue")
+    if tissue_path:
+        in_paths["tissue"] = tissue_path
     extra: dict[str, Any] = {}
     with provenance.collect_warnings() as seen:
         # --- every check before anything is written -------------------------------------------
@@ -455,6 +317,7 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
         bold = read_bold_header(bold_path)
         mask, mask_affine = read_mask(mask_path)
         check_grid(mask_path, mask.shape, mask_affine, bold)
+        tissue = read_tissue(tissue_path, bold) if tissue_path else None
         shape3 = tuple(int(s) for s in bold.shape[:3])
         if design_in.excluded:
             fit, extra = _excluded_fit(design_in, bold, settings)
@@ -473,13 +336,14 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
                 order = est.check_ar_order(design, settings.ar_order)
                 if order < settings.ar_order:
                     warnings.warn(f"{in_paths['design']}: AR({settings.ar_order}) does not fit a design with "
-                                  f"{design.dof} residual degrees of freedom; using AR({order})",
+                                  f"{design.dof} residual degrees of freedom (it needs "
+                                  f"{est.MIN_DOF_PER_AR_COEFFICIENT} per coefficient); using AR({order})",
                                   GlmstepsWarning, stacklevel=2)
             # --- read -----------------------------------------------------------------------------
             t_read = time.perf_counter()
             # passed on without a name here, so that fit_voxels can release the data after its first pass
             fit, extra = _fit_run(stream_masked(bold, mask, design_in.first_volume, threads=threads,
-                                                voxel_order="disk"), mask, bold,
+                                                voxel_order="disk"), mask, tissue, bold,
                                   design_in, design, settings, order, bold_path, time.perf_counter() - t_read,
                                   threads)
     t_fit_end = time.perf_counter()
@@ -503,8 +367,8 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
     logger.info("fit written to %s in %.2f s", outputs["fit"], time.perf_counter() - t_start)
 
 
-def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: DesignInput,
-             design: est.DesignFactors, settings: FitSettings, order: int,
+def _fit_run(series: Any, mask: npt.NDArray[np.bool_], tissue: npt.NDArray[np.int64] | None, bold: Any,
+             design_in: DesignInput, design: est.DesignFactors, settings: FitSettings, order: int,
              bold_path: str, read_s: float, threads: int = 1) -> tuple[StoredFit, dict[str, Any]]:
     logger.info("read %s: %d volumes x %d in-mask voxels in %.2f s", bold_path, series.Y.shape[0],
                 series.Y.shape[1], read_s)
@@ -512,6 +376,16 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: Des
     mean = series.mean
     finite = np.isfinite(series.minimum) & np.isfinite(series.maximum) & np.isfinite(mean)
     non_finite = ~finite
+    if non_finite.any() and settings.non_finite_voxels == "error":
+        first = np.unravel_index(int(flat_c[np.flatnonzero(non_finite)[0]]), mask.shape)
+        raise DataError(f"{bold_path}: {int(non_finite.sum())} of {flat_c.size} in-mask voxels have a non-finite "
+                        f"value (NaN or inf) in at least one volume (the first at voxel "
+                        f"{tuple(int(i) for i in first)}); fix the BOLD or the mask, or set "
+                        "fit.non_finite_voxels: drop to fit without these voxels")
+    if non_finite.any():
+        warnings.warn(f"{bold_path}: dropped {int(non_finite.sum())} of {flat_c.size} in-mask voxels with a "
+                      "non-finite value (NaN or inf) in at least one volume (fit.non_finite_voxels: drop)",
+                      GlmstepsWarning, stacklevel=2)
     zero_var = finite & (series.minimum == series.maximum)
     nonpos = finite & ~zero_var & (mean <= 0) if settings.scaling == "percent" else np.zeros_like(finite)
     data = [series.Y]
@@ -521,6 +395,7 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: Des
     counts = {"outside_mask": int(mask.size - flat_c.size), "non_finite": int(non_finite.sum()),
               "zero_variance": int(zero_var.sum()), "nonpositive_mean": int(nonpos.sum()),
               "fitted": int(fitted.sum())}
+    logger.info("voxels: %s", ", ".join(f"{k} {v}" for k, v in counts.items()))
     if counts["fitted"] == 0:
         raise DataError(f"{bold_path}: no voxel of the mask can be fitted ({counts['non_finite']} not finite, "
                         f"{counts['zero_variance']} constant, {counts['nonpositive_mean']} with mean <= 0); "
@@ -531,11 +406,13 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: Des
         raise DataError(f"{bold_path}: the mean signal over the mask is {mean[columns].mean():g}, "
                         "grand-mean scaling needs a positive mean; use scaling: none")
     factors = est.compute_scale_factors(mean[columns], settings.scaling, settings.grand_mean_value)
-    fitted_mask = np.zeros(mask.shape, dtype=bool)
-    fitted_mask.flat[voxel_index] = True
+    grid = VoxelGrid(shape=tuple(int(s) for s in mask.shape), flat_index=voxel_index,
+                     voxel_size_mm=np.asarray(bold.voxel_size_mm, dtype=np.float64),
+                     classes=None if tissue is None else tissue.ravel()[voxel_index])
+    noise = NoiseSettings(model=settings.autocorrelation, order=order,
+                          smoothing_fwhm_mm=settings.ar_smoothing_fwhm_mm, bin_width=settings.ar_bin_width)
     t0 = time.perf_counter()
-    vf = fit_voxels(data, columns, factors, design, settings, order, chunk_voxels(threads), fitted_mask,
-                    bold.voxel_size_mm, flat_index=voxel_index, threads=threads)
+    vf = fit_voxels(data, columns, factors, design, noise, chunk_voxels(threads), grid, threads=threads)
     grid_order = np.argsort(voxel_index, kind="stable")  # the fit is stored in C order
     vf, voxel_index = _reorder(vf, grid_order), voxel_index[grid_order]
     fit_s = time.perf_counter() - t0
@@ -547,10 +424,11 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], bold: Any, design_in: Des
                     dof=np.full(columns.size, design.dof, dtype=np.float32), ar_coef=vf.ar_coef, bin=vf.bin,
                     bin_covariance=vf.bin_covariance, bin_rho=vf.bin_rho, mean_image=mean_image, excluded=False,
                     attrs={"status_counts": counts, "ar_order": int(vf.order), "rank": int(design.rank)})
-    extra = {"excluded": False, "voxel_counts": counts, "autocorrelation": settings.autocorrelation,
-             "ar_order": int(vf.order), "dof": int(design.dof), "rank": int(design.rank),
-             "n_bins": int(vf.bin_rho.size), "n_volumes_fitted": int(design.X.shape[0]),
-             "n_censored": int(design.censored.sum()),
+    extra = {"excluded": False, "voxel_counts": counts, "dropped_non_finite_voxels": counts["non_finite"],
+             "autocorrelation": settings.autocorrelation, "ar_order": int(vf.order), "dof": int(design.dof),
+             "rank": int(design.rank), "n_bins": int(vf.bin_rho.size),
+             "n_tissue_classes": None if tissue is None else int(np.unique(grid.classes).size),
+             "n_volumes_fitted": int(design.X.shape[0]), "n_censored": int(design.censored.sum()),
              "scaling": settings.scaling, "grand_mean_value": settings.grand_mean_value,
              "timing_s_fit": round(fit_s, 3),
              "_qc_lag1": vf.lag1, "timing_s": {"read": round(read_s, 3)}, "sha256_bold": sha256}

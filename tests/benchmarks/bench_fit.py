@@ -1,15 +1,17 @@
 """Benchmark of the fit step (run by hand; prints a table of ratios, asserts nothing).
 
     /work/venv/bin/python tests/benchmarks/bench_fit.py [--small-only] [--tmp DIR] [--keep] [--repeat N]
+        [--models arp ar1]
 
 For each synthetic run (64x64x40x300 and 97x115x97x300, float32 and int16 with
 scl_slope, 50 % of the box in the mask, AR(1) noise) it measures, each in a
 fresh subprocess so that peak memory (``ru_maxrss``) belongs to one task:
 
 * nibabel ``get_fdata()`` of the .nii.gz (the yardstick);
-* the whole fit job (stream + mask, OLS, AR(1) estimate, binned refit, HDF5
-  and QC maps written), default settings (percent scaling, AR(1), 5 mm
-  smoothing of the AR estimate);
+* the whole fit job (stream + mask, OLS, noise model estimate, binned refit,
+  HDF5 and QC maps written) with the step's defaults (``glmsteps.jobs.fit.DEFAULTS``:
+  percent scaling, AR(8) with 5 mm smoothing of the estimates) and with each
+  noise model given by ``--models`` (default: the default model, then ``ar1``);
 * a per-voxel statsmodels GLS loop on a sample of voxels, extrapolated to the
   whole mask.
 
@@ -110,7 +112,7 @@ def write_run(folder: Path, shape: tuple[int, int, int], kind: str) -> dict[str,
     nib.save(nib.Nifti1Image(mask.astype(np.uint8), affine), folder / "mask.nii.gz")
     pd.DataFrame(X, columns=names).to_csv(folder / "design.tsv", sep="\t", index=False)
     (folder / "design.json").write_text(json.dumps({
-        "names": names, "roles": roles, "conditions": ["a", "b"], "basis": ["main", "main"] + [""] * 11,
+        "names": names, "roles": roles, "conditions": ["a", "b"] + [""] * 11, "basis": ["main", "main"] + [""] * 11,
         "first_volume": 0, "n_volumes": N_VOL, "excluded": False}))
     return {"bold": str(path), "mask": str(folder / "mask.nii.gz"), "design": str(folder / "design.tsv"),
             "design_summary": str(folder / "design.json")}
@@ -132,7 +134,7 @@ def child_fdata(bold: str) -> dict:
             "import_s": t0 - t_import}
 
 
-def child_fit(inputs_json: str, out: str) -> dict:
+def child_fit(inputs_json: str, out: str, model: str) -> dict:
     # Module imports are timed apart on both sides (a per-process constant that does not
     # grow with the data): the yardstick imports nibabel before its clock starts, so the
     # job gets the modules it loads lazily (nibabel for the header and maps, h5py for the
@@ -148,8 +150,7 @@ def child_fit(inputs_json: str, out: str) -> dict:
     inputs = json.loads(inputs_json)
     outputs = {k: str(Path(out) / (k + (".h5" if k == "fit" else ".nii.gz")))
                for k in ("fit", "mean", "residual_sd", "ar_coef")}
-    params = {"scaling": "percent", "grand_mean_value": 100.0, "autocorrelation": "ar1", "ar_order": 1,
-              "ar_smoothing_fwhm_mm": 5.0, "ar_bin_width": 0.01, "repetition_time_s": TR_S}
+    params = {**job.DEFAULTS, "autocorrelation": model, "repetition_time_s": TR_S}
     t0 = time.perf_counter()
     job.run(inputs, outputs, params, {"subject": "01", "run_id": "task-a_run-1"}, threads=int(JOB_THREADS))
     seconds = time.perf_counter() - t0
@@ -227,6 +228,7 @@ def main() -> None:
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     ap.add_argument("--blas-threads", default="1", help="OPENBLAS_NUM_THREADS of the measured tasks")
     ap.add_argument("--job-threads", default="1", help="threads of the fit job (the rule's `threads`)")
+    ap.add_argument("--models", nargs="+", default=["arp", "ar1"], help="fit.autocorrelation values to time")
     args = ap.parse_args()
     global BLAS_THREADS, JOB_THREADS
     BLAS_THREADS, JOB_THREADS = str(args.blas_threads), str(args.job_threads)
@@ -251,25 +253,29 @@ def main() -> None:
                 v = int(ellipsoid_mask(shape).sum())
                 data_mb = N_VOL * v * 4 / 2 ** 20
                 # interleaved repeats; each side's median is used (the machine is shared and noisy)
-                fdatas, fits = [], []
+                fdatas, fits = [], {m: [] for m in args.models}
                 for _ in range(args.repeat):
                     fdatas.append(run_child("fdata", inputs["bold"]))
-                    fits.append(run_child("fit", json.dumps(inputs), str(folder / "out")))
-                fdata, fit = median_run(fdatas), median_run(fits)
-                ratios = sorted(f["seconds"] / d["seconds"] for f, d in zip(fits, fdatas))
-                row = {"case": f"{case} {'x'.join(map(str, shape))}x{N_VOL} {kind}",
-                       "gz_mb": Path(inputs["bold"]).stat().st_size / 2 ** 20, "gen_s": gen_s,
-                       "fdata_s": fdata["seconds"], "fdata_mb": fdata["peak_mb"], "fit_s": fit["seconds"],
-                       "fit_mb": fit["peak_mb"], "data_mb": data_mb, "budget_mb": 1.2 * data_mb + 100,
-                       "timing": fit["timing"], "n_bins": fit["n_bins"], "fdata_import_s": fdata["import_s"],
-                       "fit_import_s": fit["import_s"], "pair_ratios": [round(r, 2) for r in ratios]}
+                    for m in args.models:
+                        fits[m].append(run_child("fit", json.dumps(inputs), str(folder / "out"), m))
+                fdata = median_run(fdatas)
+                for m in args.models:
+                    fit = median_run(fits[m])
+                    ratios = sorted(f["seconds"] / d["seconds"] for f, d in zip(fits[m], fdatas))
+                    row = {"case": f"{case} {'x'.join(map(str, shape))}x{N_VOL} {kind} {m}",
+                           "gz_mb": Path(inputs["bold"]).stat().st_size / 2 ** 20, "gen_s": gen_s,
+                           "fdata_s": fdata["seconds"], "fdata_mb": fdata["peak_mb"], "fit_s": fit["seconds"],
+                           "fit_mb": fit["peak_mb"], "data_mb": data_mb, "budget_mb": 1.2 * data_mb + 100,
+                           "timing": fit["timing"], "n_bins": fit["n_bins"], "fdata_import_s": fdata["import_s"],
+                           "fit_import_s": fit["import_s"], "pair_ratios": [round(r, 2) for r in ratios]}
+                    rows.append(row)
+                    print(json.dumps(row), flush=True)
+                row = rows[-len(args.models)]
                 if kind == "float32" and args.sample > 0:
                     sm_res = run_child("statsmodels", json.dumps(inputs), str(args.sample))
                     row["statsmodels_s"] = sm_res["extrapolated_s"]
                 if case == "large" and kind == "float32":
                     row["compression"] = run_child("compression", str(folder / "out" / "fit.h5"), str(folder))
-                rows.append(row)
-                print(json.dumps(row), flush=True)
                 shutil.rmtree(folder) if not args.keep else None
     finally:
         if not args.keep:
