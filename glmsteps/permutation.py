@@ -38,7 +38,10 @@ import numpy as np
 import numpy.typing as npt
 from scipy import linalg, ndimage
 
-from .clusters import Connectivity, SpatialGrid, cluster_extent_mass, make_spatial_grid
+import pandas as pd
+
+from .clusters import (PERMUTATION_COLUMNS, Connectivity, SpatialGrid, cluster_extent_mass, cluster_table,
+                       make_spatial_grid, relabel_by_size)
 from .stats import TAILS, Tail
 
 FloatArray = npt.NDArray[np.float64]
@@ -451,3 +454,44 @@ def run_permutation_test(X: FloatArray, Y: FloatArray, c: FloatArray, voxel_inde
 def log_progress(done: int, total: int) -> None:
     """Progress callback writing to the ``glmsteps`` logger."""
     LOGGER.info("permutations: %d / %d", done, total)
+
+
+def observed_cluster_table(result: PermutationResult, voxel_index: npt.ArrayLike, shape: tuple[int, int, int],
+                           affine: npt.ArrayLike, subpeaks: int, subpeak_spacing_mm: float
+                           ) -> tuple[pd.DataFrame, IntArray]:
+    """The observed clusters in the one cluster-table format, largest first, with their FWE p.
+
+    Parameters
+    ----------
+    result : PermutationResult
+    voxel_index : ndarray of int, shape (n_voxels,)
+        Flat C-order indices of the tested voxels in ``shape``.
+    shape : tuple of 3 int
+    affine : array_like, shape (4, 4)
+    subpeaks, subpeak_spacing_mm
+        See :func:`glmsteps.clusters.cluster_table`.
+
+    Returns
+    -------
+    table : DataFrame
+        :func:`glmsteps.clusters.cluster_table` of the observed t map plus
+        :data:`glmsteps.clusters.PERMUTATION_COLUMNS` (``mass``, ``p_fwe_extent``,
+        ``p_fwe_mass``).
+    numbers : ndarray of int, shape (n_voxels,)
+        Each tested voxel's row (``cluster_id``), 0 outside clusters.
+    """
+    index = np.asarray(voxel_index, dtype=np.int64)
+    labels3d = np.zeros(int(np.prod(shape)), dtype=np.int64)
+    labels3d[index] = result.labels
+    labels3d = labels3d.reshape(shape)
+    ordered, n = relabel_by_size(labels3d, labels3d > 0)
+    t3d = np.full(int(np.prod(shape)), np.nan)
+    t3d[index] = result.t
+    table = cluster_table(t3d.reshape(shape), ordered, affine, subpeaks, subpeak_spacing_mm)
+    numbers = ordered.reshape(-1)[index].astype(np.int64)
+    old_of_new = np.zeros(n, dtype=np.int64)
+    inside = numbers > 0
+    old_of_new[numbers[inside] - 1] = result.labels[inside] - 1
+    for column, values in zip(PERMUTATION_COLUMNS, (result.mass, result.p_fwe_extent, result.p_fwe_mass)):
+        table[column] = np.asarray(values, dtype=np.float64)[old_of_new]
+    return table, numbers

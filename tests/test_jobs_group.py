@@ -426,6 +426,7 @@ def test_error_and_warning_hints_name_settings_the_schema_accepts(tmp_path: Path
         validate(_minimal_config({key: {"null": None, "true": True, "false": False}[value]}), str(SCHEMA))
 
 
+@pytest.mark.filterwarnings("ignore::glmsteps.errors.GlmstepsWarning")
 def test_group_fit_does_not_depend_on_the_chunk_size(tmp_path: Path) -> None:
     inputs = make_study(tmp_path)
     data = groupdata.load_group_data(inputs, model(estimation="mixed_reml", mask_fraction=0.9), WILDCARDS)

@@ -228,3 +228,29 @@ def test_two_sided_clusters_of_opposite_sign_stay_apart() -> None:
     assert sorted(sign.tolist()) == [-1.0, 1.0]
     assert labels[np.ravel_multi_index((1, 1, 1), values.shape)] != labels[np.ravel_multi_index((1, 1, 2),
                                                                                               values.shape)]
+
+
+def test_observed_cluster_table_is_the_one_format_with_fwe_columns() -> None:
+    rng = np.random.default_rng(23)
+    shape = (8, 8, 4)
+    Y = rng.normal(size=(10, int(np.prod(shape))))
+    volume = np.zeros(shape, dtype=bool)
+    volume[1:4, 1:4, 1:3] = True                       # 18 voxels, positive
+    Y[:, volume.ravel()] += 2.0
+    negative = np.zeros(shape, dtype=bool)
+    negative[5:7, 5:7, 1:3] = True                     # 8 voxels, negative
+    Y[:, negative.ravel()] -= 2.0
+    affine = np.diag([2.0, 2.0, 3.0, 1.0])
+    result = pm.run_permutation_test(np.ones((10, 1)), Y, np.array([1.0]), np.arange(Y.shape[1]), shape,
+                                     "sign_flip", 50, seed=1, cluster_threshold=stats.t.isf(0.01, 9))
+    table, numbers = pm.observed_cluster_table(result, np.arange(Y.shape[1]), shape, affine, 2, 6.0)
+    assert list(table.columns) == clusters.cluster_columns(2, clusters.PERMUTATION_COLUMNS)
+    assert np.all(np.diff(table["size_voxels"].to_numpy()) <= 0)             # largest first
+    for row in table.itertuples():
+        members = numbers == row.cluster_id
+        # the row's size, sign and FWE p are those of the permutation result's cluster at the same voxels
+        old = np.unique(result.labels[members])
+        assert old.size == 1 and members.sum() == row.size_voxels == result.extent[old[0] - 1]
+        assert row.p_fwe_extent == result.p_fwe_extent[old[0] - 1] and row.mass == result.mass[old[0] - 1]
+        assert np.sign(row.peak_stat) == result.cluster_sign[old[0] - 1]
+        assert row.volume_mm3 == pytest.approx(12.0 * row.size_voxels)

@@ -38,16 +38,14 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-import pandas as pd
 
 from .. import permutation as pm
 from .. import stats
-from ..clusters import (DEFAULT_SUBPEAK_SPACING_MM, DEFAULT_SUBPEAKS, PERMUTATION_COLUMNS, cluster_table,
-                        relabel_by_size, round_cluster_table)
+from ..clusters import DEFAULT_SUBPEAK_SPACING_MM, DEFAULT_SUBPEAKS, round_cluster_table
 from ..errors import GlmstepsWarning, GroupError
 from ..fileio import write_tsv
-from ..groupdata import GroupData, group_summary, load_group_data, map_block
-from ..maps import save_map, unmask
+from ..groupdata import group_summary, load_group_data, map_block
+from ..maps import save_map
 from ..provenance import build_record, collect_warnings, write_sidecar
 
 LOGGER = logging.getLogger("glmsteps")
@@ -99,32 +97,6 @@ def permutation_settings(params: Mapping[str, Any]) -> dict[str, Any]:
     return settings
 
 
-def permutation_table(result: pm.PermutationResult, data: GroupData, voxel_index: np.ndarray,
-                      settings: Mapping[str, Any]) -> tuple[pd.DataFrame, np.ndarray]:
-    """The cluster table of the observed clusters (largest first) and each tested voxel's row number.
-
-    Returns
-    -------
-    table : DataFrame
-        :func:`glmsteps.clusters.cluster_table` of the t map plus
-        :data:`glmsteps.clusters.PERMUTATION_COLUMNS`.
-    numbers : ndarray of int, shape (n_tested_voxels,)
-        Row (cluster_id) of each tested voxel, 0 outside clusters.
-    """
-    labels3d = unmask(result.labels, voxel_index, data.shape, fill=0).astype(np.int64)
-    ordered, n = relabel_by_size(labels3d, labels3d > 0)
-    t3d = unmask(result.t, voxel_index, data.shape)
-    table = cluster_table(t3d, ordered, data.affine, int(settings["subpeaks"]),
-                          float(settings["subpeak_spacing_mm"]))
-    numbers = ordered.reshape(-1)[voxel_index].astype(np.int64)
-    old_of_new = np.zeros(n, dtype=np.int64)
-    inside = numbers > 0
-    old_of_new[numbers[inside] - 1] = result.labels[inside] - 1
-    for column, values in zip(PERMUTATION_COLUMNS, (result.mass, result.p_fwe_extent, result.p_fwe_mass)):
-        table[column] = values[old_of_new] if n else pd.Series(dtype="float64")
-    return table, numbers
-
-
 def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],
         wildcards: Mapping[str, str], threads: int = 1) -> None:
     """Permutation FWE inference for one group contrast.
@@ -163,7 +135,8 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
             settings["n_permutations"], settings["seed"], threshold,
             blocks=data.design.blocks, tfce=settings["tfce"], tfce_step=float(settings["tfce_step"]),
             connectivity=settings["connectivity"], progress=pm.log_progress, tail=tail)
-        table, numbers = permutation_table(result, data, voxel_index, settings)
+        table, numbers = pm.observed_cluster_table(result, voxel_index, data.shape, data.affine,
+                                                   int(settings["subpeaks"]), float(settings["subpeak_spacing_mm"]))
     record = build_record(STEP, params, {k: inputs[k] for k in ("effect", "variance", "participants")},
                           warnings_seen=seen)
     summary = group_summary(data, wildcards)
