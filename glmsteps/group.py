@@ -40,6 +40,13 @@ Missing values at a voxel
 are finite there and fits each set with the rows of the absent subjects
 dropped; the dof then varies over voxels (n_present - rank). A voxel whose
 reduced design cannot estimate the contrast is left NaN.
+
+Mixed effects
+-------------
+:func:`weighted_fit` is the weighted least squares of every voxel (QR of
+W^(1/2) X); :func:`estimate_between_variance_reml` (global REML maximum) and
+:func:`estimate_between_variance_dl` estimate tau^2; :func:`fit_mixed_contrast`
+weights subjects by 1/(V + tau^2) with the Hartung-Knapp variance.
 """
 
 from __future__ import annotations
@@ -520,30 +527,6 @@ def estimate_between_variance_dl(X: FloatArray, Y: FloatArray, V: FloatArray) ->
     return np.where(np.isfinite(tau2), np.maximum(tau2, 0.0), 0.0)
 
 
-def restricted_loglik(X: FloatArray, Y: FloatArray, V: FloatArray, tau2: npt.ArrayLike) -> FloatArray:
-    """Restricted (REML) log-likelihood of tau^2 at every voxel, up to a constant.
-
-    Parameters
-    ----------
-    X : ndarray, shape (n_subjects, n_regressors)
-    Y, V : ndarray, shape (n_subjects, n_voxels)
-    tau2 : array_like, shape (n_voxels,)
-
-    Returns
-    -------
-    ndarray, shape (n_voxels,)
-
-    Notes
-    -----
-    l_R = -1/2 [sum log(v_i + tau^2) + log|X'WX| + y'Py], W = diag(1/(v + tau^2))
-    (Harville 1977, JASA 72:320; Viechtbauer 2005, eq. 12).
-    """
-    tau2 = np.broadcast_to(np.asarray(tau2, dtype=np.float64), (Y.shape[1],))
-    total = np.asarray(V, dtype=np.float64) + tau2
-    fit = weighted_fit(X, Y, 1.0 / total)
-    return -0.5 * (np.log(total).sum(axis=0) + fit.logdet + fit.ypy)
-
-
 @dataclass(frozen=True)
 class RemlResult:
     """Output of :func:`estimate_between_variance_reml`.
@@ -862,18 +845,20 @@ def fit_mixed_contrast(X: FloatArray, Y: FloatArray, V: FloatArray, c: FloatArra
     b = (X'WX)^-1 X'W y by QR of W^(1/2) X, W = diag(1/(V + tau^2)). Treating
     tau^2 as known (variance c'(X'WX)^-1 c, t on n - p dof) ignores its
     uncertainty; the Hartung-Knapp factor q rescales the variance by the
-    observed weighted residual spread. With known weights its t is exactly
-    Student t on n - p dof. With estimated tau^2 the null rates at p < 0.001
-    are within their binomial interval when subjects' first-level variances
-    differ by up to 2x (tests/test_group.py), and liberal when they differ
-    more at moderate tau^2 (1.2x nominal with a 4x spread, up to 1.8x with a
-    10x spread: when tau^2 is under-estimated the weights favour a few
-    subjects and q has fewer effective degrees of freedom than n - p; measured
-    by tests/benchmarks/bench_group_calibration.py). The ``robust`` variance is
-    never liberal there but is conservative for covariate contrasts (its
-    Satterthwaite dof are small), so it is not the default. The
-    ``hartung_knapp`` variance equals statsmodels' WLS with the weights
-    1/(V + tau^2) and an estimated scale; ``robust`` equals its HC2 covariance.
+    observed weighted residual spread (with known weights t is then Student t
+    on n - p dof; Hartung & Knapp 2001). With estimated tau^2, the two-sided
+    null rate at p < 0.001 is within its binomial interval for 20 subjects
+    whose first-level variances differ up to 2x, for tau^2 = 0, 0.5 and 2
+    (tests/test_group.py). It is not in general: when first-level variances
+    differ more between subjects, or with about 10 subjects, an
+    under-estimated tau^2 lets a few subjects dominate the weights and q then
+    has fewer effective degrees of freedom than n - p;
+    tests/benchmarks/bench_group_calibration.py reports the rates. The
+    ``robust`` variance is not liberal there but is very conservative for
+    covariate contrasts (small Satterthwaite dof), so it is not the default.
+    The ``hartung_knapp`` variance equals statsmodels' WLS with the weights
+    1/(V + tau^2) and an estimated scale; ``robust`` equals its HC2 covariance
+    (tests/test_group.py).
     """
     X = np.asarray(X, dtype=np.float64)
     c = np.asarray(c, dtype=np.float64)

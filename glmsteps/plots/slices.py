@@ -7,8 +7,8 @@ and labelled with the subject's sides: the sagittal panel with posterior (P)
 left and anterior (A) right, the coronal and axial panels with the subject's
 left (L) on the left of the panel and right (R) on the right, superior up.
 Values share one two-sided colour bar centred on 0 (``SIGNED_CMAP`` from -m
-to +m, m the largest magnitude shown), so a colour means the same signed
-value in every figure whether the map has one sign or both.
+to +m, m the largest magnitude shown), so zero has the same colour in every
+figure and both signs the same scale, whether the map has one sign or both.
 """
 
 from __future__ import annotations
