@@ -40,12 +40,19 @@ Missing values at a voxel
 are finite there and fits each set with the rows of the absent subjects
 dropped; the dof then varies over voxels (n_present - rank). A voxel whose
 reduced design cannot estimate the contrast is left NaN.
+
+Mixed effects
+-------------
+:func:`weighted_fit` is the weighted least squares of every voxel (QR of
+W^(1/2) X); :func:`estimate_between_variance_reml` (global REML maximum) and
+:func:`estimate_between_variance_dl` estimate tau^2; :func:`fit_mixed_contrast`
+weights subjects by 1/(V + tau^2) with the Hartung-Knapp variance.
 """
 
 from __future__ import annotations
 
 import warnings
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Literal
 
@@ -101,6 +108,9 @@ class ContrastFit:
         n_subjects_present - rank(X).
     between_variance : ndarray, shape (n_voxels,)
         Between-subject variance (tau^2) of the mixed models; zeros for OLS.
+    converged : ndarray of bool, shape (n_voxels,)
+        False where the REML iteration did not converge; True for OLS and
+        DerSimonian-Laird (closed forms).
     """
 
     effect: FloatArray
@@ -108,6 +118,7 @@ class ContrastFit:
     t: FloatArray
     dof: FloatArray
     between_variance: FloatArray
+    converged: npt.NDArray[np.bool_]
 
 
 # ---------------------------------------------------------------------------
@@ -370,32 +381,119 @@ def fit_ols_contrast(X: FloatArray, Y: FloatArray, c: FloatArray) -> ContrastFit
         t = np.where(variance > 0, effect / np.sqrt(variance), np.nan)
     n_vox = Y.shape[1]
     return ContrastFit(effect=effect, variance=variance, t=t, dof=np.full(n_vox, dof),
-                       between_variance=np.zeros(n_vox))
+                       between_variance=np.zeros(n_vox), converged=np.ones(n_vox, dtype=bool))
 
 
-def _weighted_qr(X: FloatArray, W: FloatArray) -> tuple[np.ndarray, np.ndarray]:
-    """QR of sqrt(W) X per voxel: Q (v, n, p), R (v, p, p)."""
-    Xs = np.sqrt(W).T[:, :, None] * X[None, :, :]
-    return np.linalg.qr(Xs, mode="reduced")
+@dataclass(frozen=True)
+class WeightedFit:
+    """Weighted least squares of every voxel, by QR of W^(1/2) X.
 
-
-def _weighted_pieces(X: FloatArray, Y: FloatArray, W: FloatArray) -> dict[str, np.ndarray]:
-    """Weighted least squares per voxel and the traces the variance estimators need.
-
-    Returns residuals r = y - X b_w (n, v), b_w (p, v), R (v, p, p), tr(P) and tr(P P) (v,),
-    with P = W - W X (X'WX)^- X' W (Harville 1977).
+    Attributes
+    ----------
+    Q : ndarray, shape (n_regressors, n_subjects, n_voxels)
+        Orthonormal columns of W^(1/2) X at each voxel.
+    R : ndarray, shape (n_regressors, n_regressors, n_voxels)
+        Upper-triangular factor: W^(1/2) X = Q R.
+    beta : ndarray, shape (n_regressors, n_voxels)
+        (X'WX)^-1 X'W y.
+    white_resid : ndarray, shape (n_subjects, n_voxels)
+        W^(1/2) (y - X beta).
+    weights : ndarray, shape (n_subjects, n_voxels)
+        W.
     """
-    Q, R = _weighted_qr(X, W)
+
+    Q: FloatArray
+    R: FloatArray
+    beta: FloatArray
+    white_resid: FloatArray
+    weights: FloatArray
+
+    @property
+    def ypy(self) -> FloatArray:
+        """y'Py = sum_i w_i r_i^2, shape (n_voxels,)."""
+        return np.einsum("nv,nv->v", self.white_resid, self.white_resid)
+
+    @property
+    def logdet(self) -> FloatArray:
+        """log|X'WX| = 2 sum_j log|R_jj|, shape (n_voxels,)."""
+        diag = np.abs(np.stack([self.R[j, j] for j in range(self.R.shape[0])]))
+        with np.errstate(divide="ignore"):
+            return 2.0 * np.log(diag).sum(axis=0)
+
+    def traces(self) -> tuple[FloatArray, FloatArray]:
+        """tr(P) and tr(PP) with P = W - W X (X'WX)^-1 X'W, shape (n_voxels,) each.
+
+        Notes
+        -----
+        With H = Q Q' (the hat matrix of W^(1/2) X), P = W^(1/2) (I - H) W^(1/2), so
+        tr P = sum w - sum h w and tr PP = sum w^2 - 2 sum h w^2 + ||Q'WQ||_F^2,
+        h the leverages.
+        """
+        W = self.weights
+        h = np.einsum("pnv,pnv->nv", self.Q, self.Q)
+        qwq = np.einsum("pnv,qnv->pqv", self.Q * W[None], self.Q)
+        trace_p = W.sum(axis=0) - np.einsum("nv,nv->v", h, W)
+        trace_pp = (np.einsum("nv,nv->v", W, W) - 2.0 * np.einsum("nv,nv->v", h, W * W)
+                    + np.einsum("pqv,pqv->v", qwq, qwq))
+        return trace_p, trace_pp
+
+    def contrast_variance(self, c: FloatArray) -> FloatArray:
+        """c'(X'WX)^-1 c = ||R^-T c||^2 at every voxel, shape (n_voxels,)."""
+        p = self.R.shape[0]
+        z = np.zeros((p, self.R.shape[2]))
+        for j in range(p):                    # forward substitution R' z = c
+            z[j] = (c[j] - np.einsum("kv,kv->v", self.R[:j, j], z[:j])) / self.R[j, j]
+        return np.einsum("pv,pv->v", z, z)
+
+
+def weighted_fit(X: FloatArray, Y: FloatArray, W: FloatArray) -> WeightedFit:
+    """Weighted least squares per voxel by QR of W^(1/2) X (Gram-Schmidt, reorthogonalised).
+
+    Parameters
+    ----------
+    X : ndarray, shape (n_subjects, n_regressors)
+        Full column rank.
+    Y, W : ndarray, shape (n_subjects, n_voxels)
+        Data and weights (> 0).
+
+    Returns
+    -------
+    WeightedFit
+
+    Notes
+    -----
+    Columns are orthogonalised one after another with two passes of
+    Gram-Schmidt each ("twice is enough": Giraud, Langou & Rozloznik 2005,
+    Comput Math Appl 50:1069), which keeps Q orthonormal to working precision
+    for a full-rank X, vectorised over voxels (the group design is small and
+    shared, the weights differ by voxel). beta solves R beta = Q' W^(1/2) y by
+    back substitution; the normal equations are never formed.
+    """
+    X = np.asarray(X, dtype=np.float64)
+    Y = np.asarray(Y, dtype=np.float64)
+    W = np.asarray(W, dtype=np.float64)
+    n, p = X.shape
     sw = np.sqrt(W)
-    qty = np.einsum("vnp,nv->vp", Q, sw * Y)
-    beta = np.linalg.solve(R, qty[:, :, None])[:, :, 0].T          # (p, v)
-    resid = Y - X @ beta
-    h = np.einsum("vnp,vnp->nv", Q, Q)                              # leverages of sqrt(W) X
-    qwq = np.einsum("vnp,nv,vnq->vpq", Q, W, Q)
-    trace_p = W.sum(axis=0) - np.einsum("nv,nv->v", h, W)
-    trace_pp = (np.einsum("nv,nv->v", W, W) - 2.0 * np.einsum("nv,nv->v", h, W * W)
-                + np.einsum("vpq,vpq->v", qwq, qwq))
-    return {"resid": resid, "beta": beta, "R": R, "trace_p": trace_p, "trace_pp": trace_pp}
+    Q = np.empty((p, n, Y.shape[1]))
+    R = np.zeros((p, p, Y.shape[1]))
+    for j in range(p):
+        a = sw * X[:, j:j + 1]
+        for _ in range(2 if j else 1):
+            if j:
+                coef = np.einsum("knv,nv->kv", Q[:j], a)
+                a = a - np.einsum("knv,kv->nv", Q[:j], coef)
+                R[:j, j] += coef
+        norm = np.sqrt(np.einsum("nv,nv->v", a, a))
+        R[j, j] = norm
+        with np.errstate(divide="ignore", invalid="ignore"):
+            Q[j] = a / norm
+    swy = sw * Y
+    qty = np.einsum("pnv,nv->pv", Q, swy)
+    beta = np.zeros((p, Y.shape[1]))
+    for j in range(p - 1, -1, -1):            # back substitution R beta = Q'W^(1/2) y
+        beta[j] = (qty[j] - np.einsum("kv,kv->v", R[j, j + 1:], beta[j + 1:])) / R[j, j]
+    white_resid = swy - np.einsum("pnv,pv->nv", Q, qty)
+    return WeightedFit(Q=Q, R=R, beta=beta, white_resid=white_resid, weights=W)
 
 
 def estimate_between_variance_dl(X: FloatArray, Y: FloatArray, V: FloatArray) -> FloatArray:
@@ -421,17 +519,131 @@ def estimate_between_variance_dl(X: FloatArray, Y: FloatArray, V: FloatArray) ->
     sum w - sum w^2 / sum w.
     """
     W = 1.0 / np.asarray(V, dtype=np.float64)
-    pieces = _weighted_pieces(X, Y, W)
-    q = np.einsum("nv,nv->v", W * pieces["resid"], pieces["resid"])
+    fit = weighted_fit(X, Y, W)
+    trace_p, _ = fit.traces()
     dof = X.shape[0] - X.shape[1]
     with np.errstate(divide="ignore", invalid="ignore"):
-        tau2 = (q - dof) / pieces["trace_p"]
+        tau2 = (fit.ypy - dof) / trace_p
     return np.where(np.isfinite(tau2), np.maximum(tau2, 0.0), 0.0)
 
 
+@dataclass(frozen=True)
+class RemlResult:
+    """Output of :func:`estimate_between_variance_reml`.
+
+    Attributes
+    ----------
+    tau2 : ndarray, shape (n_voxels,)
+        REML between-subject variance (>= 0).
+    converged : ndarray of bool, shape (n_voxels,)
+        The relative step fell below the tolerance (or the maximum is on the
+        boundary tau^2 = 0) within the iteration limit.
+    n_iterations : ndarray of int, shape (n_voxels,)
+    """
+
+    tau2: FloatArray
+    converged: npt.NDArray[np.bool_]
+    n_iterations: npt.NDArray[np.int64]
+
+    def __iter__(self):  # ``tau2, converged = estimate_between_variance_reml(...)`` keeps working
+        return iter((self.tau2, self.converged))
+
+
+@dataclass(frozen=True)
+class RemlResult:
+    """Output of :func:`estimate_between_variance_reml`.
+
+    Attributes
+    ----------
+    tau2 : ndarray, shape (n_voxels,)
+        REML between-subject variance (>= 0).
+    converged : ndarray of bool, shape (n_voxels,)
+        The bracket of the root of the score (or the last Newton step) shrank
+        below the tolerance, or the maximum is on the boundary tau^2 = 0.
+    n_iterations : ndarray of int, shape (n_voxels,)
+    """
+
+    tau2: FloatArray
+    converged: npt.NDArray[np.bool_]
+    n_iterations: npt.NDArray[np.int64]
+
+    def __iter__(self) -> Iterator[np.ndarray]:
+        """``tau2, converged = estimate_between_variance_reml(...)``."""
+        return iter((self.tau2, self.converged))
+
+
+def _reml_terms(X: FloatArray, Y: FloatArray, V: FloatArray, tau2: FloatArray, floor: FloatArray
+                ) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Twice the REML score, twice its derivative and the restricted log-likelihood, per voxel.
+
+    Notes
+    -----
+    2 dl_R/dtau^2 = y'PPy - tr P and 2 d^2 l_R/d(tau^2)^2 = tr(PP) - 2 y'PPPy
+    (Harville 1977; Viechtbauer 2005, eq. 13 and its derivative);
+    l_R = -1/2 [sum log(v + tau^2) + log|X'WX| + y'Py]. With u = P y = W r:
+    u'P u = ||W^(1/2) u||^2 - ||Q' W^(1/2) u||^2.
+    """
+    total = np.maximum(V + tau2, floor)
+    fit = weighted_fit(X, Y, 1.0 / total)
+    trace_p, trace_pp = fit.traces()
+    sw = np.sqrt(fit.weights)
+    u = sw * fit.white_resid                                           # P y = W r
+    su = sw * u
+    qsu = np.einsum("pnv,nv->pv", fit.Q, su)
+    upu = np.einsum("nv,nv->v", su, su) - np.einsum("pv,pv->v", qsu, qsu)
+    loglik = -0.5 * (np.log(total).sum(axis=0) + fit.logdet + fit.ypy)
+    return np.einsum("nv,nv->v", u, u) - trace_p, trace_pp - 2.0 * upu, loglik
+
+
+#: Points of the scan for sign changes of the REML score (log-spaced, see
+#: :func:`estimate_between_variance_reml`).
+REML_SCAN_POINTS = 32
+#: Lowest scanned tau^2, as a fraction of the mean first-level variance.
+REML_SCAN_LOW = 1e-4
+#: Doublings allowed when looking for a tau^2 where the score is negative.
+REML_MAX_DOUBLINGS = 80
+
+
+def _refine_reml_roots(X: FloatArray, Y: FloatArray, V: FloatArray, lo: FloatArray, hi: FloatArray,
+                       floor: FloatArray, scale: FloatArray, max_iter: int, tol: float
+                       ) -> tuple[FloatArray, npt.NDArray[np.bool_], npt.NDArray[np.int64]]:
+    """Root of the REML score inside brackets with S(lo) > 0 > S(hi), one bracket per column.
+
+    Newton steps with the observed information, replaced by bisection when a
+    step leaves the bracket or the likelihood is not concave there; the bracket
+    shrinks by the sign of S at every iterate (safeguarded Newton, Press et al.
+    2007, Numerical Recipes 3rd ed., sec. 9.4).
+    """
+    m = lo.size
+    root = 0.5 * (lo + hi)
+    converged = np.zeros(m, dtype=bool)
+    iterations = np.zeros(m, dtype=np.int64)
+    active = np.arange(m)
+    x, lo, hi = root.copy(), lo.copy(), hi.copy()
+    for _ in range(max_iter):
+        if active.size == 0:
+            break
+        iterations[active] += 1
+        score, slope, _ = _reml_terms(X, Y[:, active], V[:, active], x, floor[active])
+        up = score > 0
+        lo = np.where(up, x, lo)
+        hi = np.where(up, hi, x)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            newton = x - score / slope
+        ok = (slope < 0) & (newton > lo) & (newton < hi)
+        new = np.where(ok, newton, 0.5 * (lo + hi))
+        size = tol * (np.abs(new) + scale[active])
+        done = (np.abs(new - x) <= size) | (hi - lo <= size) | (score == 0)
+        root[active] = new
+        converged[active[done]] = True
+        keep = ~done
+        active, x, lo, hi = active[keep], new[keep], lo[keep], hi[keep]
+    return root, converged, iterations
+
+
 def estimate_between_variance_reml(X: FloatArray, Y: FloatArray, V: FloatArray, max_iter: int = 100,
-                                   tol: float = 1e-10) -> tuple[FloatArray, npt.NDArray[np.bool_]]:
-    """Between-subject variance by restricted maximum likelihood (Fisher scoring).
+                                   tol: float = 1e-10) -> RemlResult:
+    """Between-subject variance by restricted maximum likelihood (global over tau^2 >= 0).
 
     Parameters
     ----------
@@ -440,56 +652,167 @@ def estimate_between_variance_reml(X: FloatArray, Y: FloatArray, V: FloatArray, 
     V : ndarray, shape (n_subjects, n_voxels)
         First-level variances, >= 0.
     max_iter : int
-        Iteration limit.
+        Iteration limit of each root search.
     tol : float
-        Convergence when |step| <= tol * (1 + tau^2).
+        Convergence when the bracket, or the last step, is at most
+        ``tol * (tau^2 + mean(V))``: relative to the voxel's own variance
+        scale, so the units of the maps do not matter.
 
     Returns
     -------
-    tau2 : ndarray, shape (n_voxels,)
-    converged : ndarray of bool, shape (n_voxels,)
+    RemlResult
+        ``tau2``, ``converged``, ``n_iterations`` (also unpackable as
+        ``tau2, converged``).
 
     Notes
     -----
-    The restricted log-likelihood of y ~ N(X b, diag(V + tau^2)) has score
-    (y'P P y - tr P) / 2 and expected information tr(P P) / 2, with
-    P = W - W X (X'WX)^-1 X'W, W = diag(1 / (V + tau^2)) (Harville 1977,
-    JASA 72:320; Viechtbauer 2005, J Educ Behav Stat 30:261, eq. 13). The
-    Fisher scoring step is tau^2 += (y'PPy - tr P) / tr(PP), truncated at 0.
-    P y = W r with r the weighted fit residuals, so no n x n matrix is formed.
-    Starting value: the OLS residual variance minus the mean of V (floored at 0),
-    which is the exact REML solution when V is zero.
+    The restricted log-likelihood l_R of y ~ N(X b, diag(V + tau^2)) has score
+    S = (y'P P y - tr P) / 2 with P = W - W X (X'WX)^-1 X'W,
+    W = diag(1 / (V + tau^2)) (Harville 1977, JASA 72:320; Viechtbauer 2005,
+    J Educ Behav Stat 30:261, eq. 13). With unequal first-level variances l_R
+    can have two local maxima (one at tau^2 = 0, one inside), so the maximum
+    is found globally:
+
+    1. an upper end ``hi`` with S(hi) < 0 (from max(2 s^2_OLS, mean V), doubled
+       while S >= 0; S < 0 for every large enough tau^2);
+    2. S and l_R on 0 and :data:`REML_SCAN_POINTS` log-spaced points from
+       :data:`REML_SCAN_LOW` x mean(V) to ``hi``; every change of sign of S from
+       + to - brackets a local maximum, and tau^2 = 0 is one when S(0) <= 0;
+    3. each bracket is solved by safeguarded Newton (:func:`_refine_reml_roots`),
+       which cannot oscillate, unlike plain Fisher scoring;
+    4. the candidate with the largest l_R is kept.
+
+    A voxel is reported as not converged when a root search hit ``max_iter``.
     """
     X = np.asarray(X, dtype=np.float64)
     Y = np.asarray(Y, dtype=np.float64)
     V = np.asarray(V, dtype=np.float64)
     n, p = X.shape
+    n_vox = Y.shape[1]
     resid_ols = Y - X @ (np.linalg.pinv(X) @ Y)
     s2 = np.einsum("nv,nv->v", resid_ols, resid_ols) / (n - p)
-    tau2 = np.maximum(s2 - V.mean(axis=0), 0.0)
     # Floor on V + tau^2 so that V = 0 and tau^2 = 0 never divide by zero.
     floor = 1e-12 * np.maximum(s2, np.finfo(np.float64).tiny)
-    active = np.arange(Y.shape[1])
-    converged = np.zeros(Y.shape[1], dtype=bool)
-    for _ in range(max_iter):
-        if active.size == 0:
+    scale = V.mean(axis=0) + floor
+    everything = np.arange(n_vox)
+
+    hi = np.maximum(2.0 * s2, scale)
+    pending = everything
+    for _ in range(REML_MAX_DOUBLINGS):
+        s_hi, _, _ = _reml_terms(X, Y[:, pending], V[:, pending], hi[pending], floor[pending])
+        pending = pending[s_hi >= 0]
+        if pending.size == 0:
             break
-        W = 1.0 / np.maximum(V[:, active] + tau2[active], floor[active])
-        pieces = _weighted_pieces(X, Y[:, active], W)
-        py = W * pieces["resid"]
-        score2 = np.einsum("nv,nv->v", py, py) - pieces["trace_p"]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            step = np.where(pieces["trace_pp"] > 0, score2 / pieces["trace_pp"], 0.0)
-        new = np.maximum(tau2[active] + step, 0.0)
-        done = np.abs(new - tau2[active]) <= tol * (1.0 + new)
-        tau2[active] = new
-        converged[active[done]] = True
-        active = active[~done]
-    return tau2, converged
+        hi[pending] *= 2.0
+    # scan: column k holds tau^2 = grid[k] (k = 0 is the boundary)
+    low = np.minimum(REML_SCAN_LOW * scale, 0.5 * hi)
+    steps = np.linspace(0.0, 1.0, REML_SCAN_POINTS)
+    grid = np.vstack([np.zeros(n_vox), np.exp(np.log(low)[None, :] + steps[:, None] * np.log(hi / low)[None, :])])
+    score = np.empty(grid.shape)
+    loglik = np.empty(grid.shape)
+    for k in range(grid.shape[0]):
+        score[k], _, loglik[k] = _reml_terms(X, Y, V, grid[k], floor)
+    # candidates: (voxel, tau^2, converged, iterations, l_R)
+    at_zero = ~(score[0] > 0)
+    cand_vox = [everything[at_zero]]
+    cand_tau = [np.zeros(int(at_zero.sum()))]
+    cand_ok = [np.ones(int(at_zero.sum()), dtype=bool)]
+    cand_it = [np.zeros(int(at_zero.sum()), dtype=np.int64)]
+    cand_ll = [loglik[0, at_zero]]
+    k_idx, v_idx = np.nonzero((score[:-1] > 0) & ~(score[1:] > 0))
+    if v_idx.size:
+        root, ok, its = _refine_reml_roots(X, Y[:, v_idx], V[:, v_idx], grid[k_idx, v_idx], grid[k_idx + 1, v_idx],
+                                           floor[v_idx], scale[v_idx], max_iter, tol)
+        _, _, root_ll = _reml_terms(X, Y[:, v_idx], V[:, v_idx], root, floor[v_idx])
+        cand_vox.append(v_idx)
+        cand_tau.append(root)
+        cand_ok.append(ok)
+        cand_it.append(its)
+        cand_ll.append(root_ll)
+    vox = np.concatenate(cand_vox)
+    tau = np.concatenate(cand_tau)
+    ok_all = np.concatenate(cand_ok)
+    it_all = np.concatenate(cand_it)
+    ll_all = np.nan_to_num(np.concatenate(cand_ll), nan=-np.inf)
+    order = np.lexsort((-ll_all, vox))               # per voxel, the best candidate first
+    first = np.ones(order.size, dtype=bool)
+    first[1:] = vox[order][1:] != vox[order][:-1]
+    best = order[first]
+    tau2 = np.zeros(n_vox)
+    converged = np.zeros(n_vox, dtype=bool)
+    iterations = np.zeros(n_vox, dtype=np.int64)
+    tau2[vox[best]] = tau[best]
+    converged[vox[best]] = ok_all[best]
+    np.add.at(iterations, vox, it_all)
+    missing = np.ones(n_vox, dtype=bool)
+    missing[vox[best]] = False
+    converged[missing] = False                        # no candidate at all (non-finite input)
+    return RemlResult(tau2=tau2, converged=converged, n_iterations=iterations)
+
+
+MixedInference = Literal["hartung_knapp", "robust"]
+#: Small-sample inference of the mixed-effects models, as recorded in sidecars.
+MIXED_INFERENCE = ("weights 1/(V + tau^2); Hartung-Knapp-Sidik-Jonkman variance q c'(X'WX)^-1 c with "
+                   "q = sum w r^2 / (n - p), t referred to Student t on n - p degrees of freedom (Hartung & Knapp "
+                   "2001; Sidik & Jonkman 2002; Knapp & Hartung 2003)")
+
+
+def robust_contrast_variance(fit: WeightedFit, c: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Bias-reduced robust variance of c'b and its Satterthwaite degrees of freedom, per voxel.
+
+    Parameters
+    ----------
+    fit : WeightedFit
+        Weighted fit with the working weights W = 1/(V + tau^2).
+    c : ndarray, shape (n_regressors,)
+
+    Returns
+    -------
+    variance : ndarray, shape (n_voxels,)
+        sum_i a_i^2 r_i^2 / (1 - h_ii), with c'b = a'y and h_ii the leverages of
+        W^(1/2) X; NaN where a subject with non-zero weight in c'b has leverage 1.
+    dof : ndarray, shape (n_voxels,)
+        nu = tr(G B)^2 / tr(G B G B), G = diag(a^2 / (1 - h)), B = Omega - K the
+        covariance of the residuals under the working model Omega = W^-1,
+        K = X (X'WX)^-1 X'.
+
+    Notes
+    -----
+    The HC2 / CR2 "bias-reduced linearisation" estimator is unbiased for
+    c'(X'WX)^-1 c when the working model is right, and stays consistent when
+    it is not (e.g. when tau^2 is under-estimated); its Satterthwaite degrees
+    of freedom follow Bell & McCaffrey (2002, Survey Methodology 28:169, eq. 8)
+    as recommended for meta-regression by Tipton (2015, Psychol Methods 20:375).
+    With equal weights in a one-sample design it is the one-sample t test
+    (variance s^2/n, nu = n - 1). With W^(1/2) X = QR: a = W^(1/2) Q R^-T c,
+    h = diag(QQ'), tr(GB) = sum a^2 / w and
+    tr(GBGB) = sum g^2 o^2 (1 - 2h) + ||Q' diag(g o) Q||_F^2 with o = 1/w.
+    """
+    p = fit.R.shape[0]
+    z = np.zeros((p, fit.R.shape[2]))
+    for j in range(p):                          # forward substitution R' z = c
+        z[j] = (c[j] - np.einsum("kv,kv->v", fit.R[:j, j], z[:j])) / fit.R[j, j]
+    sw = np.sqrt(fit.weights)
+    a = sw * np.einsum("pnv,pv->nv", fit.Q, z)
+    h = np.einsum("pnv,pnv->nv", fit.Q, fit.Q)
+    resid = fit.white_resid / sw
+    with np.errstate(divide="ignore", invalid="ignore"):
+        g = np.where(a != 0, a * a / (1.0 - h), 0.0)
+    g = np.where(np.isfinite(g), g, np.nan)
+    variance = np.einsum("nv,nv->v", g, resid * resid)
+    o = 1.0 / fit.weights
+    go = g * o
+    qgq = np.einsum("pnv,qnv->pqv", fit.Q * go[None], fit.Q)
+    trace_gb = np.einsum("nv,nv->v", a * a, o)
+    trace_gbgb = np.einsum("nv,nv->v", go * go, 1.0 - 2.0 * h) + np.einsum("pqv,pqv->v", qgq, qgq)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dof = trace_gb**2 / trace_gbgb
+    return variance, dof
 
 
 def fit_mixed_contrast(X: FloatArray, Y: FloatArray, V: FloatArray, c: FloatArray,
-                       method: Literal["mixed_reml", "mixed_dl"]) -> ContrastFit:
+                       method: Literal["mixed_reml", "mixed_dl"],
+                       inference: MixedInference = "hartung_knapp") -> ContrastFit:
     """Mixed-effects group contrast: weights 1 / (first-level variance + tau^2).
 
     Parameters
@@ -502,41 +825,71 @@ def fit_mixed_contrast(X: FloatArray, Y: FloatArray, V: FloatArray, c: FloatArra
     c : ndarray, shape (n_regressors,)
     method : {'mixed_reml', 'mixed_dl'}
         Estimator of tau^2.
+    inference : {'hartung_knapp', 'robust'}
+        ``hartung_knapp`` (the workflow's): var(c'b) = q c'(X'WX)^-1 c with
+        q = sum w r^2 / (n - p), t on n - p dof (Hartung & Knapp 2001, Stat Med
+        20:3875; Sidik & Jonkman 2002, Stat Med 21:3153; Knapp & Hartung 2003,
+        Stat Med 22:2693). ``robust``: :func:`robust_contrast_variance`, t on
+        its Satterthwaite dof; kept for comparison
+        (tests/benchmarks/bench_group_calibration.py).
 
     Returns
     -------
     ContrastFit
-        ``between_variance`` holds tau^2; dof = n - rank(X).
+        ``between_variance`` holds tau^2, ``variance`` the variance of c'b used
+        for t, ``dof`` its degrees of freedom; ``converged`` is False where REML
+        did not converge (always True for DerSimonian-Laird).
 
     Notes
     -----
-    b = (X'WX)^-1 X'W y by QR of W^(1/2) X = QR, var(c'b) = ||R^-T c||^2,
-    t = c'b / sqrt(var) referred to t with n - p dof (Hartung & Knapp 2001 use
-    the same reference distribution; the dof follow DerSimonian & Laird 1986).
+    b = (X'WX)^-1 X'W y by QR of W^(1/2) X, W = diag(1/(V + tau^2)). Treating
+    tau^2 as known (variance c'(X'WX)^-1 c, t on n - p dof) ignores its
+    uncertainty; the Hartung-Knapp factor q rescales the variance by the
+    observed weighted residual spread (with known weights t is then Student t
+    on n - p dof; Hartung & Knapp 2001). With estimated tau^2, the two-sided
+    null rate at p < 0.001 is within its binomial interval for 20 subjects
+    whose first-level variances differ up to 2x, for tau^2 = 0, 0.5 and 2
+    (tests/test_group.py). It is not in general: when first-level variances
+    differ more between subjects, or with about 10 subjects, an
+    under-estimated tau^2 lets a few subjects dominate the weights and q then
+    has fewer effective degrees of freedom than n - p;
+    tests/benchmarks/bench_group_calibration.py reports the rates. The
+    ``robust`` variance is not liberal there but is very conservative for
+    covariate contrasts (small Satterthwaite dof), so it is not the default.
+    The ``hartung_knapp`` variance equals statsmodels' WLS with the weights
+    1/(V + tau^2) and an estimated scale; ``robust`` equals its HC2 covariance
+    (tests/test_group.py).
     """
     X = np.asarray(X, dtype=np.float64)
+    c = np.asarray(c, dtype=np.float64)
+    converged = np.ones(Y.shape[1], dtype=bool)
     if method == "mixed_reml":
-        tau2, converged = estimate_between_variance_reml(X, Y, V)
+        reml = estimate_between_variance_reml(X, Y, V)
+        tau2, converged = reml.tau2, reml.converged
         if not converged.all():
             warnings.warn(f"group model: REML of the between-subject variance did not converge at "
-                          f"{int(np.sum(~converged))} of {converged.size} voxels; their last iterate is used",
-                          GlmstepsWarning, stacklevel=2)
+                          f"{int(np.sum(~converged))} of {converged.size} voxels; their last iterate is used "
+                          "(listed in the sidecar)", GlmstepsWarning, stacklevel=2)
     elif method == "mixed_dl":
         tau2 = estimate_between_variance_dl(X, Y, V)
     else:
         raise GroupError(f"group model: estimation {method!r} is unknown; use one of {list(ESTIMATIONS)}")
     resid_scale = np.maximum(np.var(Y, axis=0), np.finfo(np.float64).tiny)
     W = 1.0 / np.maximum(V + tau2, 1e-12 * resid_scale)
-    Q, R = _weighted_qr(X, W)
-    qty = np.einsum("vnp,nv->vp", Q, np.sqrt(W) * Y)
-    beta = np.linalg.solve(R, qty[:, :, None])[:, :, 0].T
-    z = np.linalg.solve(np.transpose(R, (0, 2, 1)), np.broadcast_to(c, (R.shape[0], c.size))[:, :, None])[:, :, 0]
-    variance = np.einsum("vp,vp->v", z, z)
-    effect = c @ beta
+    fit = weighted_fit(X, Y, W)
+    effect = c @ fit.beta
+    if inference == "hartung_knapp":
+        dof_value = float(X.shape[0] - np.linalg.matrix_rank(X))
+        variance = fit.ypy / dof_value * fit.contrast_variance(c)
+        dof = np.full(Y.shape[1], dof_value)
+    elif inference == "robust":
+        variance, dof = robust_contrast_variance(fit, c)
+    else:
+        raise ValueError(f"inference must be 'robust' or 'hartung_knapp', got {inference!r}")
     with np.errstate(divide="ignore", invalid="ignore"):
         t = np.where(variance > 0, effect / np.sqrt(variance), np.nan)
-    dof = float(X.shape[0] - np.linalg.matrix_rank(X))
-    return ContrastFit(effect=effect, variance=variance, t=t, dof=np.full(Y.shape[1], dof), between_variance=tau2)
+    dof = np.where(np.isfinite(t), dof, np.nan)
+    return ContrastFit(effect=effect, variance=variance, t=t, dof=dof, between_variance=tau2, converged=converged)
 
 
 def fit_contrast(X: FloatArray, Y: FloatArray, V: FloatArray | None, c: FloatArray,
@@ -580,7 +933,9 @@ def fit_contrast_with_missing(X: FloatArray, Y: FloatArray, V: FloatArray | None
     if V is not None and estimation != "ols":
         present &= np.isfinite(V) & (V > 0 if estimation == "mixed_dl" else V >= 0)
     n_vox = Y.shape[1]
-    out = {k: np.full(n_vox, np.nan) for k in ("effect", "variance", "t", "dof", "between_variance")}
+    out: dict[str, np.ndarray] = {k: np.full(n_vox, np.nan) for k in ("effect", "variance", "t", "dof",
+                                                                       "between_variance")}
+    out["converged"] = np.ones(n_vox, dtype=bool)
     patterns, inverse = np.unique(present.T, axis=0, return_inverse=True)
     inverse = np.asarray(inverse).reshape(-1)
     bad = 0

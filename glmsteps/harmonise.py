@@ -37,6 +37,11 @@ class SiteHarmonisation:
         Shrunken multiplicative site effects delta*^2 (standardised units).
     n_iterations : int
         Iterations of the empirical-Bayes fixed point.
+    effect_scale : ndarray, shape (n_subjects, n_voxels)
+        The factor each subject's deviation from the site model was multiplied
+        by: 1 / sqrt(delta*^2) of its site (1 where the voxel was left as is).
+        The variance of a harmonised effect is the first-level variance times
+        ``effect_scale ** 2`` (see :func:`harmonise_variances`).
     """
 
     adjusted: FloatArray
@@ -44,6 +49,7 @@ class SiteHarmonisation:
     location: FloatArray
     scale: FloatArray
     n_iterations: int
+    effect_scale: FloatArray
 
 
 def standardise_by_site(Y: FloatArray, site_matrix: FloatArray, covariates: FloatArray
@@ -209,6 +215,37 @@ def harmonise_site_effects(Y: FloatArray, sites: Sequence[object], covariates: F
     per_subject_gamma = S @ gamma_star
     per_subject_delta = np.sqrt(S @ delta2_star)
     adjusted = sigma[None, :] * (Z - per_subject_gamma) / per_subject_delta + standard_mean
-    adjusted = np.where(sigma[None, :] > 0, adjusted, Y)
+    kept = sigma[None, :] > 0
+    adjusted = np.where(kept, adjusted, Y)
+    effect_scale = np.where(kept, 1.0 / per_subject_delta, 1.0)
     return SiteHarmonisation(adjusted=adjusted, levels=levels, location=gamma_star, scale=delta2_star,
-                             n_iterations=n_iter)
+                             n_iterations=n_iter, effect_scale=effect_scale)
+
+
+def harmonise_variances(V: FloatArray, harmonisation: SiteHarmonisation) -> FloatArray:
+    """First-level variances in the units of the harmonised effects.
+
+    Parameters
+    ----------
+    V : ndarray, shape (n_subjects, n_voxels)
+        Variances of the effects that were harmonised.
+    harmonisation : SiteHarmonisation
+        The result of :func:`harmonise_site_effects` on those effects.
+
+    Returns
+    -------
+    ndarray, shape (n_subjects, n_voxels)
+        ``V * effect_scale ** 2``.
+
+    Notes
+    -----
+    The harmonised effect is y* = (y - m - sigma gamma*) / sqrt(delta*^2) + m,
+    an affine map of y with slope 1 / sqrt(delta*^2) (Johnson, Li & Rabinovic
+    2007, eq. 3.3, site estimates held fixed), so var(y*) = var(y) / delta*^2.
+    Without this the mixed-effects weights 1 / (V + tau^2) would mix
+    harmonised effects with variances in the units before harmonisation.
+    """
+    V = np.asarray(V, dtype=np.float64)
+    if V.shape != harmonisation.effect_scale.shape:
+        raise ValueError(f"variances {V.shape} and harmonised effects {harmonisation.effect_scale.shape} differ")
+    return V * harmonisation.effect_scale**2

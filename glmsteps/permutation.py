@@ -18,10 +18,13 @@ space of c'), the residuals are permuted or sign-flipped and added back to the
 reduced fit, and the full model is refitted. With no nuisance columns this is
 plain permutation / sign flipping of the data.
 
-The statistic is the OLS t of ``c`` and the test is one-sided: large positive
-t is evidence against H0 (define the opposite contrast for the other tail).
-Draws are random with replacement from a seeded generator; draw 0 is always
-the identity, so every p value is at least 1 / n_permutations.
+The statistic is the OLS t of ``c``; the test follows ``tail``:
+``positive`` (large t is evidence), ``negative`` (large -t) or ``two-sided``
+(large |t|: the maximum statistic is max |t|, clusters are formed on each
+sign separately at |t| above the threshold and compete in one maximum, TFCE
+is computed for each sign). Draws are random with replacement from a seeded
+generator; draw 0 is always the identity, so every p value is at least
+1 / n_permutations.
 """
 
 from __future__ import annotations
@@ -35,10 +38,15 @@ import numpy as np
 import numpy.typing as npt
 from scipy import linalg, ndimage
 
+import pandas as pd
+
+from .clusters import (PERMUTATION_COLUMNS, Connectivity, SpatialGrid, cluster_extent_mass, cluster_table,
+                       make_spatial_grid, relabel_by_size)
+from .stats import TAILS, Tail
+
 FloatArray = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.int64]
 Method = Literal["sign_flip", "permute"]
-Connectivity = Literal[6, 18, 26]
 
 LOGGER = logging.getLogger("glmsteps")
 
@@ -201,89 +209,6 @@ def permutation_operators(model: FreedmanLaneModel, method: Method, draws: np.nd
 # spatial statistics
 # ---------------------------------------------------------------------------
 
-def connectivity_structure(ndim: int, connectivity: Connectivity = 26) -> npt.NDArray[np.bool_]:
-    """Neighbourhood for cluster labelling: 6, 18 or 26 neighbours in 3D; full in other dims."""
-    if ndim != 3:
-        return ndimage.generate_binary_structure(ndim, ndim)
-    rank = {6: 1, 18: 2, 26: 3}[int(connectivity)]
-    return ndimage.generate_binary_structure(3, rank)
-
-
-@dataclass(frozen=True)
-class SpatialGrid:
-    """Voxels of the analysis inside the bounding box of the mask (for fast labelling).
-
-    Attributes
-    ----------
-    shape : tuple of int
-        Bounding-box shape.
-    index : ndarray of int, shape (n_voxels,)
-        Flat C-order index of each analysed voxel within the box.
-    structure : ndarray of bool
-        Labelling neighbourhood.
-    """
-
-    shape: tuple[int, ...]
-    index: IntArray
-    structure: npt.NDArray[np.bool_]
-
-
-def make_spatial_grid(voxel_index: npt.ArrayLike, shape: tuple[int, ...],
-                      connectivity: Connectivity = 26) -> SpatialGrid:
-    """Crop the grid to the bounding box of the analysed voxels."""
-    coords = np.array(np.unravel_index(np.asarray(voxel_index, dtype=np.int64), shape))
-    low = coords.min(axis=1)
-    box = tuple(int(v) for v in coords.max(axis=1) - low + 1)
-    index = np.ravel_multi_index(tuple(coords - low[:, None]), box).astype(np.int64)
-    return SpatialGrid(shape=box, index=index, structure=connectivity_structure(len(shape), connectivity))
-
-
-def label_clusters(values: FloatArray, threshold: float, grid: SpatialGrid) -> tuple[IntArray, int]:
-    """Label voxels with value > threshold into connected clusters.
-
-    Returns
-    -------
-    labels : ndarray of int, shape (n_voxels,)
-        Cluster number (1..n_clusters) of each voxel, 0 below threshold.
-    n_clusters : int
-    """
-    volume = np.zeros(int(np.prod(grid.shape)), dtype=bool)
-    volume[grid.index] = np.nan_to_num(values, nan=-np.inf) > threshold
-    labelled, n_clusters = ndimage.label(volume.reshape(grid.shape), structure=grid.structure)
-    return labelled.reshape(-1)[grid.index].astype(np.int64), int(n_clusters)
-
-
-def cluster_extent_mass(values: FloatArray, threshold: float, grid: SpatialGrid
-                        ) -> tuple[IntArray, FloatArray, FloatArray]:
-    """Clusters above ``threshold`` with their extent and mass.
-
-    Parameters
-    ----------
-    values : ndarray, shape (n_voxels,)
-        Statistic per analysed voxel.
-    threshold : float
-        Cluster-forming threshold (voxels strictly above it).
-    grid : SpatialGrid
-
-    Returns
-    -------
-    labels : ndarray of int, shape (n_voxels,)
-    extent : ndarray, shape (n_clusters,)
-        Voxel count of cluster k (index k - 1).
-    mass : ndarray, shape (n_clusters,)
-        Sum of the statistic over the cluster's voxels.
-
-    Notes
-    -----
-    Cluster mass as the sum of suprathreshold statistic values (Bullmore et al.
-    1999, IEEE Trans Med Imaging 18:32).
-    """
-    labels, n_clusters = label_clusters(values, threshold, grid)
-    extent = np.bincount(labels, minlength=n_clusters + 1)[1:].astype(np.float64)
-    mass = np.bincount(labels, weights=np.where(labels > 0, values, 0.0), minlength=n_clusters + 1)[1:]
-    return labels, extent, mass
-
-
 def tfce_scores(values: FloatArray, grid: SpatialGrid, step: float = 0.1,
                 extent_power: float = TFCE_EXTENT_POWER, height_power: float = TFCE_HEIGHT_POWER) -> FloatArray:
     """Threshold-free cluster enhancement of positive values.
@@ -327,6 +252,56 @@ def tfce_scores(values: FloatArray, grid: SpatialGrid, step: float = 0.1,
     return scores
 
 
+def oriented(t: FloatArray, tail: Tail) -> FloatArray:
+    """The statistic whose large values are evidence for ``tail``: t, -t or |t|."""
+    if tail == "positive":
+        return t
+    if tail == "negative":
+        return -t
+    return np.abs(t)
+
+
+def signed_clusters(t: FloatArray, threshold: float, grid: SpatialGrid, tail: Tail
+                    ) -> tuple[IntArray, FloatArray, FloatArray, FloatArray]:
+    """Clusters for ``tail``: extent, mass (of the oriented statistic) and sign of each.
+
+    Positive clusters are voxels with t > threshold, negative ones t < -threshold;
+    ``two-sided`` labels both signs apart (they never join) and numbers the
+    negative clusters after the positive ones.
+
+    Returns
+    -------
+    labels : ndarray of int, shape (n_voxels,)
+    extent, mass, sign : ndarray, shape (n_clusters,)
+    """
+    parts = []
+    if tail in ("positive", "two-sided"):
+        parts.append((1.0, cluster_extent_mass(t, threshold, grid)))
+    if tail in ("negative", "two-sided"):
+        parts.append((-1.0, cluster_extent_mass(-t, threshold, grid)))
+    labels = np.zeros(t.shape, dtype=np.int64)
+    extents, masses, signs = [], [], []
+    offset = 0
+    for sign, (lab, extent, mass) in parts:
+        labels = np.where(lab > 0, lab + offset, labels)
+        offset += extent.size
+        extents.append(extent)
+        masses.append(mass)
+        signs.append(np.full(extent.size, sign))
+    return labels, np.concatenate(extents), np.concatenate(masses), np.concatenate(signs)
+
+
+def tfce_for_tail(t: FloatArray, grid: SpatialGrid, tail: Tail, step: float) -> FloatArray:
+    """TFCE of the evidence for ``tail``: of t, of -t, or of each sign apart (magnitudes, >= 0)."""
+    if tail == "positive":
+        return tfce_scores(t, grid, step)
+    if tail == "negative":
+        return tfce_scores(-t, grid, step)
+    positive = tfce_scores(t, grid, step)
+    negative = tfce_scores(-t, grid, step)
+    return np.where(np.nan_to_num(t) >= 0, positive, negative)
+
+
 # ---------------------------------------------------------------------------
 # the test
 # ---------------------------------------------------------------------------
@@ -336,7 +311,9 @@ class PermutationResult:
     """Observed statistics and their family-wise error p values.
 
     All per-voxel arrays have shape (n_voxels,); per-cluster arrays (n_clusters,),
-    cluster k at index k - 1; maxima have shape (n_permutations,).
+    cluster k at index k - 1 (``cluster_sign`` +1 for clusters of positive t,
+    -1 for negative); maxima have shape (n_permutations,). ``max_t`` holds the
+    maxima of the oriented statistic (t, -t or |t| for the tail).
     """
 
     t: FloatArray
@@ -350,12 +327,14 @@ class PermutationResult:
     p_fwe_mass: FloatArray
     max_extent: FloatArray
     max_mass: FloatArray
+    cluster_sign: FloatArray = field(default_factory=lambda: np.zeros(0))
     tfce: FloatArray | None = None
     p_fwe_tfce: FloatArray | None = None
     max_tfce: FloatArray | None = None
     dof: float = 0.0
     n_permutations: int = 0
     method: str = ""
+    tail: str = "two-sided"
     extra: dict = field(default_factory=dict)
 
 
@@ -378,7 +357,8 @@ def run_permutation_test(X: FloatArray, Y: FloatArray, c: FloatArray, voxel_inde
                          shape: tuple[int, ...], method: Method, n_permutations: int, seed: int,
                          cluster_threshold: float, blocks: npt.ArrayLike | None = None, tfce: bool = False,
                          tfce_step: float = 0.1, connectivity: Connectivity = 26, memory_mb: float = 64.0,
-                         progress: Callable[[int, int], None] | None = None) -> PermutationResult:
+                         progress: Callable[[int, int], None] | None = None,
+                         tail: Tail = "two-sided") -> PermutationResult:
     """Permutation test of a group contrast with voxel, cluster and TFCE FWE p values.
 
     Parameters
@@ -396,7 +376,8 @@ def run_permutation_test(X: FloatArray, Y: FloatArray, c: FloatArray, voxel_inde
         Draws including the identity.
     seed : int
     cluster_threshold : float
-        Cluster-forming threshold on the t statistic.
+        Cluster-forming threshold on the oriented statistic (t, -t or |t|; see
+        :func:`glmsteps.stats.t_critical`).
     blocks : array_like of int, shape (n_subjects,), optional
         Sign-flip blocks (pairs); each subject alone by default.
     tfce : bool
@@ -408,11 +389,15 @@ def run_permutation_test(X: FloatArray, Y: FloatArray, c: FloatArray, voxel_inde
         Bound on the block of permuted statistics held at once.
     progress : callable(done, total), optional
         Called after each block.
+    tail : {"two-sided", "positive", "negative"}
+        Alternative hypothesis (see the module docstring).
 
     Returns
     -------
     PermutationResult
     """
+    if tail not in TAILS:
+        raise ValueError(f"tail must be one of {TAILS}, got {tail!r}")
     X = np.asarray(X, dtype=np.float64)
     Y = np.asarray(Y, dtype=np.float64)
     n, n_vox = Y.shape
@@ -439,26 +424,27 @@ def run_permutation_test(X: FloatArray, Y: FloatArray, c: FloatArray, voxel_inde
         t_block = t_from_operators(model, ops, resid, fitted_effect, total_ss)
         if start == 0:
             observed_t = t_block[0].copy()
-        clean = np.nan_to_num(t_block, nan=-np.inf)
+        clean = np.nan_to_num(oriented(t_block, tail), nan=-np.inf)
         max_t[start:stop] = clean.max(axis=1) if n_vox else -np.inf
         for i in range(stop - start):
-            _, extent, mass = cluster_extent_mass(t_block[i], cluster_threshold, grid)
+            _, extent, mass, _ = signed_clusters(t_block[i], cluster_threshold, grid, tail)
             if extent.size:
                 max_extent[start + i] = extent.max()
                 max_mass[start + i] = mass.max()
             if max_tfce is not None:
-                max_tfce[start + i] = tfce_scores(t_block[i], grid, tfce_step).max(initial=0.0)
+                max_tfce[start + i] = tfce_for_tail(t_block[i], grid, tail, tfce_step).max(initial=0.0)
         if progress is not None:
             progress(stop, n_permutations)
     assert observed_t is not None
-    labels, extent, mass = cluster_extent_mass(observed_t, cluster_threshold, grid)
+    labels, extent, mass, sign = signed_clusters(observed_t, cluster_threshold, grid, tail)
     result = PermutationResult(
-        t=observed_t, p_fwe=fwe_p_values(observed_t, max_t), max_t=max_t, cluster_threshold=float(cluster_threshold),
-        labels=labels, extent=extent, mass=mass, p_fwe_extent=fwe_p_values(extent, max_extent),
-        p_fwe_mass=fwe_p_values(mass, max_mass), max_extent=max_extent, max_mass=max_mass,
-        dof=model.dof, n_permutations=n_permutations, method=method)
+        t=observed_t, p_fwe=fwe_p_values(oriented(observed_t, tail), max_t), max_t=max_t,
+        cluster_threshold=float(cluster_threshold), labels=labels, extent=extent, mass=mass,
+        p_fwe_extent=fwe_p_values(extent, max_extent), p_fwe_mass=fwe_p_values(mass, max_mass),
+        max_extent=max_extent, max_mass=max_mass, cluster_sign=sign, dof=model.dof,
+        n_permutations=n_permutations, method=method, tail=tail)
     if tfce and max_tfce is not None:
-        scores = tfce_scores(observed_t, grid, tfce_step)
+        scores = tfce_for_tail(observed_t, grid, tail, tfce_step)
         result.tfce = scores
         result.p_fwe_tfce = np.where(np.isfinite(observed_t), fwe_p_values(scores, max_tfce), np.nan)
         result.max_tfce = max_tfce
@@ -468,3 +454,44 @@ def run_permutation_test(X: FloatArray, Y: FloatArray, c: FloatArray, voxel_inde
 def log_progress(done: int, total: int) -> None:
     """Progress callback writing to the ``glmsteps`` logger."""
     LOGGER.info("permutations: %d / %d", done, total)
+
+
+def observed_cluster_table(result: PermutationResult, voxel_index: npt.ArrayLike, shape: tuple[int, int, int],
+                           affine: npt.ArrayLike, subpeaks: int, subpeak_spacing_mm: float
+                           ) -> tuple[pd.DataFrame, IntArray]:
+    """The observed clusters in the one cluster-table format, largest first, with their FWE p.
+
+    Parameters
+    ----------
+    result : PermutationResult
+    voxel_index : ndarray of int, shape (n_voxels,)
+        Flat C-order indices of the tested voxels in ``shape``.
+    shape : tuple of 3 int
+    affine : array_like, shape (4, 4)
+    subpeaks, subpeak_spacing_mm
+        See :func:`glmsteps.clusters.cluster_table`.
+
+    Returns
+    -------
+    table : DataFrame
+        :func:`glmsteps.clusters.cluster_table` of the observed t map plus
+        :data:`glmsteps.clusters.PERMUTATION_COLUMNS` (``mass``, ``p_fwe_extent``,
+        ``p_fwe_mass``).
+    numbers : ndarray of int, shape (n_voxels,)
+        Each tested voxel's row (``cluster_id``), 0 outside clusters.
+    """
+    index = np.asarray(voxel_index, dtype=np.int64)
+    labels3d = np.zeros(int(np.prod(shape)), dtype=np.int64)
+    labels3d[index] = result.labels
+    labels3d = labels3d.reshape(shape)
+    ordered, n = relabel_by_size(labels3d, labels3d > 0)
+    t3d = np.full(int(np.prod(shape)), np.nan)
+    t3d[index] = result.t
+    table = cluster_table(t3d.reshape(shape), ordered, affine, subpeaks, subpeak_spacing_mm)
+    numbers = ordered.reshape(-1)[index].astype(np.int64)
+    old_of_new = np.zeros(n, dtype=np.int64)
+    inside = numbers > 0
+    old_of_new[numbers[inside] - 1] = result.labels[inside] - 1
+    for column, values in zip(PERMUTATION_COLUMNS, (result.mass, result.p_fwe_extent, result.p_fwe_mass)):
+        table[column] = np.asarray(values, dtype=np.float64)[old_of_new]
+    return table, numbers

@@ -314,3 +314,35 @@ def z_logpvalue(z: npt.ArrayLike, tail: Tail = "two-sided") -> npt.NDArray[np.fl
     if tail == "negative":
         return special.log_ndtr(z)
     return np.minimum(np.log(2.0) + special.log_ndtr(-np.abs(z)), 0.0)
+
+
+def t_critical(p: npt.ArrayLike, dof: npt.ArrayLike, tail: Tail = "two-sided") -> npt.NDArray[np.float64]:
+    """The t value whose p-value for ``tail`` is ``p`` (on the side of the tail).
+
+    Parameters
+    ----------
+    p : array_like of float
+        p-values in (0, 1).
+    dof : array_like of float
+        Degrees of freedom.
+    tail : {"two-sided", "positive", "negative"}
+
+    Returns
+    -------
+    ndarray of float64
+        ``c >= 0`` such that ``t_pvalue(c, dof, "positive") == p`` for a
+        one-sided tail and ``t_pvalue(c, dof, "two-sided") == p`` for two
+        sides; a statistic passes when ``t > c`` (positive), ``t < -c``
+        (negative) or ``|t| > c`` (two-sided).
+
+    Notes
+    -----
+    Inverse of the upper tail, :math:`S_\nu^{-1}(p)` or :math:`S_\nu^{-1}(p/2)`
+    (``scipy.stats.t.isf``, accurate far into the tail).
+    """
+    from scipy import stats as _stats
+
+    _check_tail(tail)
+    p = np.asarray(p, dtype=np.float64)
+    one_side = p / 2.0 if tail == "two-sided" else p
+    return np.asarray(_stats.t.isf(one_side, np.asarray(dof, dtype=np.float64)), dtype=np.float64)

@@ -1,6 +1,7 @@
-"""Thresholding of statistical maps: FDR, Bonferroni, cluster extent, cluster tables.
+"""Thresholding of statistical maps: FDR, Bonferroni, uncorrected, cluster extent.
 
-Pure maths on 3D arrays; no file access.
+Pure maths on 3D arrays; no file access. Clusters (labelling, the cluster
+table) are :mod:`glmsteps.clusters`.
 
 Threshold settings (one mapping per named threshold)::
 
@@ -9,25 +10,20 @@ Threshold settings (one mapping per named threshold)::
     {method: bonferroni,     alpha: 0.05}
     {method: cluster_extent, forming_p: 0.001, min_cluster_voxels: k}
 
-Every setting also takes ``connectivity`` (6, 18 or 26; default 26) and
-``tail`` (``two-sided`` default, ``positive``, ``negative``). The test itself
-uses the ``p`` map as written by the contrast step (its own tail); ``tail``
-here chooses which signs of z may be kept: ``positive`` keeps z > 0 only,
-``negative`` z < 0 only, ``two-sided`` both. Positive and negative voxels
-never join one cluster. The number of tests for FDR and Bonferroni is the
-number of voxels with a finite p.
+Every setting also takes ``connectivity`` (6, 18 or 26; default 26),
+``tail`` (``two-sided`` default, ``positive``, ``negative``), ``subpeaks``
+and ``subpeak_spacing_mm`` (the cluster table, see :mod:`glmsteps.clusters`).
 
-Cluster table (one row per cluster, largest first)
---------------------------------------------------
-``cluster_id`` (1 = largest), ``size_voxels``, ``volume_mm3``,
-``peak_stat`` (signed value at the voxel of largest |stat|), ``peak_x_mm``,
-``peak_y_mm``, ``peak_z_mm`` (world mm through the affine), ``centre_x_mm``,
-``centre_y_mm``, ``centre_z_mm`` (unweighted mean of the cluster's voxel
-positions), then for k = 1..max_subpeaks: ``subpeak<k>_stat``,
-``subpeak<k>_x_mm``, ``subpeak<k>_y_mm``, ``subpeak<k>_z_mm`` (NaN where a
-cluster has fewer sub-peaks). Sub-peaks are local maxima of |stat| in the
-cluster (26-neighbourhood), taken in decreasing |stat| and kept when more than
-``min_distance_mm`` from the peak and every sub-peak already kept.
+Tail rule
+---------
+The test uses p-values for the tail the setting asks for
+(:func:`p_for_tail`): the map's own ``p`` when it was computed for that tail
+(or is an F test, which has one tail), otherwise the p of that tail computed
+from ``z``. This is exact for t-based maps because their z carries the same
+one-sided tail probability as t (``glmsteps.stats.t_to_z``). ``positive``
+keeps z > 0 only, ``negative`` z < 0 only, ``two-sided`` both; positive and
+negative voxels never join one cluster. The number of tests for FDR and
+Bonferroni is the number of voxels with a finite p.
 """
 
 from __future__ import annotations
@@ -39,23 +35,22 @@ from typing import Any, Literal
 
 import numpy as np
 import numpy.typing as npt
-import pandas as pd
-from nibabel.affines import apply_affine
-from scipy import ndimage
 
-from . import stats
+from . import clusters, stats
 from .errors import ConfigError
 
 Method = Literal["uncorrected", "fdr", "bonferroni", "cluster_extent"]
-Connectivity = Literal[6, 18, 26]
-_CONNECTIVITY_RANK = {6: 1, 18: 2, 26: 3}
+Connectivity = clusters.Connectivity
+MapKind = Literal["t", "F"]
 _KEYS: dict[str, dict[str, bool]] = {  # method -> {key: required}
     "uncorrected": {"p": True, "min_cluster_voxels": False},
     "fdr": {"q": True},
     "bonferroni": {"alpha": True},
     "cluster_extent": {"forming_p": True, "min_cluster_voxels": True},
 }
-_COMMON = {"method", "name", "connectivity", "tail"}
+_COMMON = {"method", "name", "connectivity", "tail", "subpeaks", "subpeak_spacing_mm"}
+#: Bounds of ``subpeaks`` (config/schema.yaml's bounds).
+MAX_SUBPEAKS = 20
 
 
 @dataclass(frozen=True)
@@ -72,6 +67,10 @@ class ThresholdSetting:
         Clusters smaller than this are removed (1 keeps all).
     connectivity : {6, 18, 26}
     tail : {"two-sided", "positive", "negative"}
+    subpeaks : int
+        Sub-peaks per cluster in the cluster table.
+    subpeak_spacing_mm : float
+        Least distance between reported peaks of a cluster (mm).
     """
 
     name: str
@@ -80,6 +79,8 @@ class ThresholdSetting:
     min_cluster_voxels: int = 1
     connectivity: Connectivity = 26
     tail: stats.Tail = "two-sided"
+    subpeaks: int = clusters.DEFAULT_SUBPEAKS
+    subpeak_spacing_mm: float = clusters.DEFAULT_SUBPEAK_SPACING_MM
 
 
 def parse_setting(setting: Mapping[str, Any], name: str | None = None) -> ThresholdSetting:
@@ -117,12 +118,60 @@ def parse_setting(setting: Mapping[str, Any], name: str | None = None) -> Thresh
     if isinstance(k, bool) or not isinstance(k, int) or k < 1:
         raise ConfigError(f"{where}: min_cluster_voxels must be an integer >= 1, found {k!r}")
     conn = setting.get("connectivity", 26)
-    if conn not in _CONNECTIVITY_RANK or isinstance(conn, bool):
+    if conn not in clusters.CONNECTIVITY_RANK or isinstance(conn, bool):
         raise ConfigError(f"{where}: connectivity must be 6, 18 or 26, found {conn!r}")
     tail = setting.get("tail", "two-sided")
     if tail not in stats.TAILS:
         raise ConfigError(f"{where}: tail must be one of {list(stats.TAILS)}, found {tail!r}")
-    return ThresholdSetting(str(label), method, float(level), int(k), int(conn), tail)
+    n_sub = setting.get("subpeaks", clusters.DEFAULT_SUBPEAKS)
+    if isinstance(n_sub, bool) or not isinstance(n_sub, int) or not 0 <= n_sub <= MAX_SUBPEAKS:
+        raise ConfigError(f"{where}: subpeaks must be an integer from 0 to {MAX_SUBPEAKS}, found {n_sub!r}")
+    spacing = setting.get("subpeak_spacing_mm", clusters.DEFAULT_SUBPEAK_SPACING_MM)
+    if isinstance(spacing, bool) or not isinstance(spacing, (int, float)) or not spacing > 0:
+        raise ConfigError(f"{where}: subpeak_spacing_mm must be a positive number (mm), found {spacing!r}")
+    return ThresholdSetting(str(label), method, float(level), int(k), int(conn), tail, int(n_sub), float(spacing))
+
+
+def p_for_tail(z: npt.ArrayLike, p: npt.ArrayLike, map_kind: MapKind | None, map_tail: str | None,
+               tail: stats.Tail) -> tuple[npt.NDArray[np.float64], str]:
+    """p-values for the tail a threshold asks for.
+
+    Parameters
+    ----------
+    z, p : array_like, same shape
+        The map's z and p (NaN outside the analysed voxels).
+    map_kind : {"t", "F"} or None
+        Test behind the maps (from the p map's sidecar; None when unknown).
+    map_tail : str or None
+        Tail the p map was computed for (t maps; None when unknown).
+    tail : {"two-sided", "positive", "negative"}
+        Tail of the threshold.
+
+    Returns
+    -------
+    p : ndarray of float64
+    source : str
+        How p was obtained (for the sidecar).
+
+    Notes
+    -----
+    For a t-based map z = sign(t) Phi^-1(1 - S(|t|)) has the tail
+    probabilities of t (probability integral transform), so the p of any tail
+    follows from z: positive Phi(-z), negative Phi(z), two-sided
+    2 Phi(-|z|) (:func:`glmsteps.stats.z_logpvalue`). F maps have one tail and
+    keep their p; so does a map whose tail is unknown.
+    """
+    z = np.asarray(z, dtype=np.float64)
+    p = np.asarray(p, dtype=np.float64)
+    if map_kind == "F":
+        return p, "p map (F test, one tail)"
+    if map_tail == tail:
+        return p, f"p map ({tail})"
+    if map_kind is None and map_tail is None:
+        return p, "p map (tail not recorded; used as given)"
+    with np.errstate(invalid="ignore"):
+        p_tail = np.exp(stats.z_logpvalue(z, tail))
+    return np.where(np.isfinite(p), p_tail, np.nan), f"from z for the {tail} tail (the p map is {map_tail})"
 
 
 def fdr_threshold(p: npt.ArrayLike, q: float) -> float:
@@ -161,126 +210,6 @@ def bonferroni_threshold(n_tests: int, alpha: float) -> float:
     return alpha / n_tests if n_tests > 0 else float("nan")
 
 
-def label_clusters(mask3d: npt.NDArray[np.bool_], connectivity: Connectivity = 26) -> tuple[npt.NDArray[np.int32], int]:
-    """Label the connected clusters of a 3D mask, largest cluster first.
-
-    Parameters
-    ----------
-    mask3d : ndarray of bool, shape (nx, ny, nz)
-    connectivity : {6, 18, 26}
-        Neighbours sharing a face (6), a face or edge (18), or any corner (26).
-
-    Returns
-    -------
-    labels : ndarray of int32, shape (nx, ny, nz)
-        0 outside the mask; 1 for the largest cluster, 2 the next, ...
-        (ties ordered by the first voxel in C order).
-    n_clusters : int
-
-    Notes
-    -----
-    Connected components (``scipy.ndimage.label``) with the structuring
-    element ``generate_binary_structure(3, r)``, r = 1, 2, 3.
-    """
-    if connectivity not in _CONNECTIVITY_RANK:
-        raise ValueError(f"connectivity must be 6, 18 or 26, got {connectivity!r}")
-    structure = ndimage.generate_binary_structure(3, _CONNECTIVITY_RANK[connectivity])
-    raw, n = ndimage.label(np.asarray(mask3d, dtype=bool), structure=structure)
-    if n == 0:
-        return raw.astype(np.int32), 0
-    sizes = np.bincount(raw.ravel(), minlength=n + 1)[1:]
-    order = np.lexsort((np.arange(n), -sizes))       # by size desc, then first-found
-    new_label = np.zeros(n + 1, dtype=np.int32)
-    new_label[order + 1] = np.arange(1, n + 1, dtype=np.int32)
-    return new_label[raw], int(n)
-
-
-def _empty_table(max_subpeaks: int) -> pd.DataFrame:
-    return pd.DataFrame({c: pd.Series(dtype="int64" if c in ("cluster_id", "size_voxels") else "float64")
-                         for c in cluster_columns(max_subpeaks)})
-
-
-def cluster_columns(max_subpeaks: int = 3) -> list[str]:
-    """Column names of the cluster table (see the module docstring)."""
-    cols = ["cluster_id", "size_voxels", "volume_mm3", "peak_stat", "peak_x_mm", "peak_y_mm", "peak_z_mm",
-            "centre_x_mm", "centre_y_mm", "centre_z_mm"]
-    for k in range(1, max_subpeaks + 1):
-        cols += [f"subpeak{k}_stat", f"subpeak{k}_x_mm", f"subpeak{k}_y_mm", f"subpeak{k}_z_mm"]
-    return cols
-
-
-def cluster_table(stat3d: npt.NDArray[np.floating], labels: npt.NDArray[np.integer],
-                  affine: npt.NDArray[np.floating], voxel_volume_mm3: float, min_distance_mm: float = 8.0,
-                  max_subpeaks: int = 3) -> pd.DataFrame:
-    """Table of clusters with peak, centre and sub-peaks in world mm.
-
-    Parameters
-    ----------
-    stat3d : ndarray, shape (nx, ny, nz)
-        Statistic map (z); peaks are taken on |stat|, reported signed.
-    labels : ndarray of int, shape (nx, ny, nz)
-        Cluster labels 1..n (0 = background), as from :func:`label_clusters`.
-    affine : ndarray, shape (4, 4)
-        Voxel-to-world transform (mm).
-    voxel_volume_mm3 : float
-        Volume of one voxel (mm^3).
-    min_distance_mm : float
-        Minimum distance between reported peaks (mm).
-    max_subpeaks : int
-        Number of sub-peak column groups.
-
-    Returns
-    -------
-    pandas.DataFrame
-        Columns :func:`cluster_columns`; one row per label in increasing
-        label order; no rows when ``labels`` is all 0.
-
-    Notes
-    -----
-    World coordinates :math:`(x, y, z, 1)' = A\\,(i, j, k, 1)'`. Local maxima
-    use a 3x3x3 maximum filter of |stat| restricted to the cluster.
-    """
-    stat = np.asarray(stat3d, dtype=np.float64)
-    labels = np.asarray(labels)
-    n = int(labels.max()) if labels.size else 0
-    if n == 0:
-        return _empty_table(max_subpeaks)
-    mag = np.where(labels > 0, np.abs(np.nan_to_num(stat, nan=0.0)), -np.inf)
-    rows = []
-    for lab in range(1, n + 1):
-        inside = labels == lab
-        idx = np.argwhere(inside)
-        if idx.size == 0:
-            continue
-        cl_mag = np.where(inside, mag, -np.inf)
-        local_max = (ndimage.maximum_filter(cl_mag, size=3, mode="constant", cval=-np.inf) == cl_mag) & inside
-        cand = np.argwhere(local_max)
-        cand = cand[np.argsort(-cl_mag[tuple(cand.T)], kind="stable")]
-        peak = tuple(np.unravel_index(np.argmax(cl_mag), cl_mag.shape))
-        kept_mm = [apply_affine(affine, peak)]
-        sub = []
-        for vox in cand:
-            if len(sub) >= max_subpeaks:
-                break
-            if tuple(vox) == peak:
-                continue
-            xyz = apply_affine(affine, vox)
-            if all(np.linalg.norm(xyz - other) > min_distance_mm for other in kept_mm):
-                kept_mm.append(xyz)
-                sub.append((float(stat[tuple(vox)]), xyz))
-        centre = apply_affine(affine, idx.astype(np.float64)).mean(axis=0)
-        row: dict[str, Any] = {"cluster_id": lab, "size_voxels": int(len(idx)),
-                               "volume_mm3": round(float(len(idx) * voxel_volume_mm3), 6), "peak_stat": float(stat[peak])}
-        row.update(dict(zip(("peak_x_mm", "peak_y_mm", "peak_z_mm"), map(float, kept_mm[0]))))
-        row.update(dict(zip(("centre_x_mm", "centre_y_mm", "centre_z_mm"), map(float, centre))))
-        for k in range(1, max_subpeaks + 1):
-            value, xyz = sub[k - 1] if k <= len(sub) else (math.nan, (math.nan,) * 3)
-            row[f"subpeak{k}_stat"] = value
-            row.update({f"subpeak{k}_{a}_mm": float(c) for a, c in zip("xyz", xyz)})
-        rows.append(row)
-    return pd.DataFrame(rows, columns=cluster_columns(max_subpeaks))
-
-
 @dataclass
 class ThresholdResult:
     """Outcome of thresholding one map.
@@ -317,7 +246,7 @@ def threshold_map(z3d: npt.NDArray[np.floating], p3d: npt.NDArray[np.floating],
     z3d : ndarray, shape (nx, ny, nz)
         z map (NaN outside the analysed voxels).
     p3d : ndarray, shape (nx, ny, nz)
-        p map of the same test.
+        p map of the same test, for the setting's tail (see :func:`p_for_tail`).
     setting : ThresholdSetting
 
     Returns
@@ -345,14 +274,12 @@ def threshold_map(z3d: npt.NDArray[np.floating], p3d: npt.NDArray[np.floating],
     sig = valid & (p <= cutoff) if math.isfinite(cutoff) else np.zeros(z.shape, dtype=bool)
     pos = sig & (z > 0) if setting.tail in ("two-sided", "positive") else np.zeros_like(sig)
     neg = sig & (z < 0) if setting.tail in ("two-sided", "negative") else np.zeros_like(sig)
-    lab_pos, n_pos = label_clusters(pos, setting.connectivity)
-    lab_neg, n_neg = label_clusters(neg, setting.connectivity)
-    combined = np.where(lab_neg > 0, lab_neg + n_pos, lab_pos)
-    sizes = np.bincount(combined.ravel(), minlength=n_pos + n_neg + 1)
+    combined, n_all = clusters.label_signed(pos, neg, setting.connectivity)
+    sizes = np.bincount(combined.ravel(), minlength=n_all + 1)
     small = sizes < setting.min_cluster_voxels
     small[0] = True
     mask = ~small[combined]
-    labels, n = _relabel(combined, mask)
+    labels, n = clusters.relabel_by_size(combined, mask)
     if n == 0:
         note = (f"no voxel survived ({setting.method}, {n_tests} tests"
                 + (f", cutoff p <= {cutoff:.3g}" if math.isfinite(cutoff) else ", no p-value passed")
@@ -362,15 +289,3 @@ def threshold_map(z3d: npt.NDArray[np.floating], p3d: npt.NDArray[np.floating],
         note = f"{int(mask.sum())} voxels in {n} clusters survived ({setting.method}, {n_tests} tests)"
     return ThresholdResult(mask=mask, labels=labels, n_clusters=n, n_tests=n_tests,
                            p_cutoff=float(cutoff) if math.isfinite(cutoff) else None, note=note)
-
-
-def _relabel(combined: npt.NDArray[np.integer], keep: npt.NDArray[np.bool_]) -> tuple[npt.NDArray[np.int32], int]:
-    """Renumber kept labels 1..n by decreasing size (keeps positive and negative clusters apart)."""
-    kept = np.unique(combined[keep])
-    if kept.size == 0:
-        return np.zeros(combined.shape, dtype=np.int32), 0
-    sizes = np.bincount(combined.ravel())[kept]
-    order = np.lexsort((kept, -sizes))
-    mapping = np.zeros(int(combined.max()) + 1, dtype=np.int32)
-    mapping[kept[order]] = np.arange(1, kept.size + 1, dtype=np.int32)
-    return np.where(keep, mapping[combined], 0).astype(np.int32), int(kept.size)

@@ -291,11 +291,12 @@ def contrast_params(wildcards):
     return _contrast_params(wildcards.contrast)
 
 
+_THRESHOLD_COMMON_KEYS = ("connectivity", "tail", "subpeaks", "subpeak_spacing_mm")
 _THRESHOLD_KEYS = {
-    "uncorrected": ("p", "min_cluster_voxels", "connectivity", "tail"),
-    "fdr": ("q", "connectivity", "tail"),
-    "bonferroni": ("alpha", "connectivity", "tail"),
-    "cluster_extent": ("forming_p", "min_cluster_voxels", "connectivity", "tail"),
+    "uncorrected": ("p", "min_cluster_voxels") + _THRESHOLD_COMMON_KEYS,
+    "fdr": ("q",) + _THRESHOLD_COMMON_KEYS,
+    "bonferroni": ("alpha",) + _THRESHOLD_COMMON_KEYS,
+    "cluster_extent": ("forming_p", "min_cluster_voxels") + _THRESHOLD_COMMON_KEYS,
 }
 
 
@@ -325,7 +326,7 @@ _GROUP_DESIGN_KEYS = {
     "one_sample": (), "regression": (), "two_sample": ("group_column",), "paired": ("group_column", "pair_column"),
 }
 _GROUP_MODEL_KEYS = ("design", "covariates", "site_column", "site_as_covariate", "estimation", "harmonise_sites",
-                     "mask_fraction")
+                     "mask_fraction", "tail")
 
 
 @_canonical_params

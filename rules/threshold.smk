@@ -1,4 +1,6 @@
 # One job per map per threshold setting; outputs sit beside the map they threshold.
+# One rule (threshold_run) reused for the subject and group levels: only the paths, the
+# level's settings and the cluster-job group differ.
 rule threshold_run:
     input:
         z=RUN_DIR + "/contrast-{contrast}/z.nii.gz",
@@ -19,7 +21,7 @@ rule threshold_run:
         "../scripts/threshold.py"
 
 
-rule threshold_subject:
+use rule threshold_run as threshold_subject with:
     input:
         z=SUBJECT_DIR + "/contrast-{contrast}/z.nii.gz",
         p=SUBJECT_DIR + "/contrast-{contrast}/p.nii.gz",
@@ -31,15 +33,12 @@ rule threshold_subject:
         figure=SUBJECT_DIR + "/contrast-{contrast}/threshold-{threshold}/slices.png",
     params:
         settings=subject_threshold_params,
-    group:
-        "subject_{subject}"
     log:
         LOG_DIR + "/sub-{subject}/combined/contrast-{contrast}_threshold-{threshold}.log",
-    script:
-        "../scripts/threshold.py"
 
 
-rule threshold_group:
+# The group level's cluster job is its model's (the SLURM profile's `groups:` says the same).
+use rule threshold_run as threshold_group with:
     input:
         z=GROUP_DIR + "/z.nii.gz",
         p=GROUP_DIR + "/p.nii.gz",
@@ -51,7 +50,7 @@ rule threshold_group:
         figure=GROUP_DIR + "/threshold-{threshold}/slices.png",
     params:
         settings=group_threshold_params,
+    group:
+        "model_{model}"
     log:
         LOG_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}_threshold-{threshold}.log",
-    script:
-        "../scripts/threshold.py"

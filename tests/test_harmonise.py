@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from glmsteps.errors import GroupError
-from glmsteps.harmonise import harmonise_site_effects
+from glmsteps.harmonise import harmonise_site_effects, harmonise_variances
 
 
 def hand_harmonise(Y: np.ndarray, sites: list[str], tol: float = 1e-10) -> np.ndarray:
@@ -109,3 +109,59 @@ def test_harmonisation_input_errors() -> None:
         harmonise_site_effects(Y, ["a", "a", "b", "b", "c"])
     with pytest.raises(GroupError, match="one site"):
         harmonise_site_effects(Y, ["a"] * 5)
+
+
+def _two_site_gain_study(seed: int = 41, n_per: int = 12, n_vox: int = 400, gain: float = 1.7):
+    """Two sites whose scanners differ in gain by 1.7x: effects AND their first-level variances scale."""
+    rng = np.random.default_rng(seed)
+    sites = np.repeat(["a", "b"], n_per)
+    scale = np.where(sites == "b", gain, 1.0)[:, None]
+    v_true = rng.uniform(0.1, 0.4, size=(2 * n_per, n_vox))          # first-level variance in common units
+    effect = 0.5 + rng.normal(0, np.sqrt(0.3), size=(2 * n_per, n_vox)) + rng.normal(size=v_true.shape) * np.sqrt(v_true)
+    return sites, scale * effect, scale**2 * v_true
+
+
+def test_variances_are_rescaled_with_the_effects() -> None:
+    sites, Y, V = _two_site_gain_study()
+    result = harmonise_site_effects(Y, sites)
+    V_star = harmonise_variances(V, result)
+    # reference: the harmonisation is an affine map of each site's effects at a voxel (Johnson et al. 2007,
+    # eq. 3.3), so its slope is (y*_i - y*_j) / (y_i - y_j) for two subjects i, j of one site; the variance
+    # of y* is the variance of y times that slope squared.
+    for site in ("a", "b"):
+        i, j = np.flatnonzero(sites == site)[:2]
+        slope = (result.adjusted[i] - result.adjusted[j]) / (Y[i] - Y[j])
+        np.testing.assert_allclose(V_star[i], V[i] * slope**2, rtol=1e-9)
+        np.testing.assert_allclose(result.effect_scale[i], slope, rtol=1e-9)
+
+
+def test_mixed_model_on_harmonised_effects_matches_statsmodels_wls() -> None:
+    import statsmodels.api as sm
+    from statsmodels.stats.meta_analysis import combine_effects
+
+    from glmsteps import group as gm
+
+    sites, Y, V = _two_site_gain_study()
+    result = harmonise_site_effects(Y, sites)
+    V_star = harmonise_variances(V, result)
+    fit = gm.fit_mixed_contrast(np.ones((Y.shape[0], 1)), result.adjusted, V_star, np.array([1.0]), "mixed_dl")
+    raw = gm.fit_mixed_contrast(np.ones((Y.shape[0], 1)), result.adjusted, V, np.array([1.0]), "mixed_dl")
+    # the slope of each site's affine harmonisation map, from two of its subjects (see the test above)
+    slope = np.empty_like(Y)
+    for site in ("a", "b"):
+        rows = np.flatnonzero(sites == site)
+        slope[rows] = (result.adjusted[rows[0]] - result.adjusted[rows[1]]) / (Y[rows[0]] - Y[rows[1]])
+    worse = 0
+    for v in range(0, Y.shape[1], 40):
+        ref_v = V[:, v] * slope[:, v] ** 2
+        # reference: statsmodels 0.15 combine_effects (DerSimonian-Laird tau^2, HKSJ variance) and WLS with
+        # weights 1 / (rescaled variance + tau^2), on the harmonised effects
+        # (statsmodels leaves a negative DL estimate; DerSimonian & Laird 1986, eq. 8 truncate it at 0)
+        tau2 = max(0.0, combine_effects(result.adjusted[:, v], ref_v, method_re="dl").tau2)
+        assert fit.between_variance[v] == pytest.approx(tau2, rel=1e-9, abs=1e-12)
+        wls = sm.WLS(result.adjusted[:, v], np.ones(Y.shape[0]), weights=1.0 / (ref_v + tau2)).fit()
+        assert fit.effect[v] == pytest.approx(wls.params[0], rel=1e-9)
+        assert fit.variance[v] == pytest.approx(wls.bse[0] ** 2, rel=1e-9)
+        worse += not np.isclose(raw.variance[v], wls.bse[0] ** 2, rtol=1e-3)
+    # with the variances left in raw units (the defect) the weights, and so the variances, differ
+    assert worse == 10

@@ -333,6 +333,17 @@ def test_threshold_job_outputs(tmp_path):
     assert table.loc[0, "size_voxels"] >= 48 and table.loc[0, "volume_mm3"] == pytest.approx(table.loc[0, "size_voxels"] * 8)
     side = json.loads((folder / "thresholded.json").read_text())
     assert side["map"]["stat"] == "z_thresholded" and side["threshold"] == "fwe" and side["step"] == "threshold"
+    # the written table is rounded: 0.1 mm, 3 significant digits for statistics (hand-checked format)
+    header, *rows = (folder / "clusters.tsv").read_text().splitlines()
+    columns = header.split("\t")
+    for row in rows:
+        for name, text in zip(columns, row.split("\t")):
+            if text == "n/a":
+                continue
+            if name.endswith("_mm") or name.endswith("_mm3"):
+                assert len(text.split(".")[1]) <= 1 if "." in text else True, (name, text)
+            elif name.endswith("_stat"):
+                assert len(text.replace("-", "").replace(".", "").lstrip("0").rstrip("0")) <= 3, (name, text)
     assert (folder / "slices.png").stat().st_size > 0 and (folder / "clusters.json").exists()
 
 

@@ -7,6 +7,7 @@ import pytest
 import statsmodels.api as sm
 from scipy import ndimage, stats
 
+from glmsteps import clusters
 from glmsteps import permutation as pm
 
 
@@ -62,7 +63,7 @@ def test_freedman_lane_matches_explicit_refit(method: str) -> None:
 
 def test_tfce_hand_computed_1d() -> None:
     values = np.array([0.0, 1.0, 2.0, 1.0, 0.0, 3.0])
-    grid = pm.make_spatial_grid(np.arange(6), (6,))
+    grid = clusters.make_spatial_grid(np.arange(6), (6,))
     scores = pm.tfce_scores(values, grid, step=1.0, extent_power=0.5, height_power=2.0)
     # By hand (Smith & Nichols 2009 eq. 1, dh = 1): h = 1 clusters {1,2,3} (e = 3) and {5} (e = 1);
     # h = 2 {2}, {5}; h = 3 {5}. Voxel 1: sqrt(3) * 1; voxel 2: sqrt(3) + 1 * 4;
@@ -72,7 +73,7 @@ def test_tfce_hand_computed_1d() -> None:
 
 
 def test_tfce_single_voxel_converges_to_integral() -> None:
-    grid = pm.make_spatial_grid(np.arange(5), (5,))
+    grid = clusters.make_spatial_grid(np.arange(5), (5,))
     values = np.array([0.0, 0.0, 2.5, 0.0, 0.0])
     scores = pm.tfce_scores(values, grid, step=1e-3)
     # reference: Smith & Nichols (2009) eq. 1 with e = 1: integral_0^s h^2 dh = s^3 / 3; the right Riemann
@@ -86,10 +87,10 @@ def test_cluster_extent_and_mass_on_tiny_map() -> None:
     volume[1, 1, 1] = 5.0                                                 # touches the L by a corner / edge
     volume[3, 3, 2] = 6.0                                                 # isolated
     volume[3, 2, 0] = 1.0                                                 # below threshold
-    grid26 = pm.make_spatial_grid(np.arange(volume.size), volume.shape, connectivity=26)
-    grid6 = pm.make_spatial_grid(np.arange(volume.size), volume.shape, connectivity=6)
-    _, extent26, mass26 = pm.cluster_extent_mass(volume.reshape(-1), 2.0, grid26)
-    _, extent6, mass6 = pm.cluster_extent_mass(volume.reshape(-1), 2.0, grid6)
+    grid26 = clusters.make_spatial_grid(np.arange(volume.size), volume.shape, connectivity=26)
+    grid6 = clusters.make_spatial_grid(np.arange(volume.size), volume.shape, connectivity=6)
+    _, extent26, mass26 = clusters.cluster_extent_mass(volume.reshape(-1), 2.0, grid26)
+    _, extent6, mass6 = clusters.cluster_extent_mass(volume.reshape(-1), 2.0, grid6)
     # counted by hand: with 26 neighbours the L and (1,1,1) join (shared edge with (0,1,0) etc.)
     assert sorted(zip(extent26, mass26)) == [(1.0, 6.0), (4.0, 15.5)]
     assert sorted(zip(extent6, mass6)) == [(1.0, 5.0), (1.0, 6.0), (3.0, 10.5)]
@@ -124,8 +125,8 @@ def test_strong_effect_reaches_minimum_p_but_never_below() -> None:
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("method", ["sign_flip", "permute"])
-def test_fwer_calibration_on_smooth_null_data(method: str) -> None:
+@pytest.mark.parametrize("method, tail", [("sign_flip", "two-sided"), ("permute", "positive")])
+def test_fwer_calibration_on_smooth_null_data(method: str, tail: str) -> None:
     n_datasets, n_perm, n = 200, 100, 12
     shape = (14, 14, 12)                                  # 2,352 voxels
     rng = np.random.default_rng(7 if method == "sign_flip" else 8)
@@ -141,7 +142,7 @@ def test_fwer_calibration_on_smooth_null_data(method: str) -> None:
         if method == "permute":
             Y = Y + 0.8 * X[:, [2]]                       # a real nuisance effect
         result = pm.run_permutation_test(X, Y, c, np.arange(Y.shape[1]), shape, method, n_perm, seed=k,
-                                         cluster_threshold=threshold)
+                                         cluster_threshold=threshold, tail=tail)
         any_voxel += bool(np.nanmin(result.p_fwe) < 0.05)
         any_cluster += bool(result.p_fwe_extent.size and result.p_fwe_extent.min() < 0.05)
     # With 100 draws p < 0.05 means at most 4 maxima >= observed: exact level 0.04 under H0.
@@ -174,3 +175,82 @@ def test_paired_block_flips_equal_label_swaps_within_pairs() -> None:
             # reference: statsmodels OLS refit with the two members of each flipped pair exchanged
             res = sm.OLS(Y[swapped, v], X).fit()
             assert t[b, v] == pytest.approx(res.tvalues[0], rel=1e-9)
+
+
+def _one_sample_draws(n: int, n_perm: int, seed: int) -> np.ndarray:
+    return pm.make_sign_flips(np.arange(n), n_perm, seed)
+
+
+@pytest.mark.parametrize("tail", ["two-sided", "positive", "negative"])
+def test_maximum_statistic_follows_the_tail(tail: str) -> None:
+    rng = np.random.default_rng(21)
+    n, shape = 10, (4, 4, 3)
+    Y = rng.normal(size=(n, 48))
+    result = pm.run_permutation_test(np.ones((n, 1)), Y, np.array([1.0]), np.arange(48), shape, "sign_flip", 30,
+                                     seed=4, cluster_threshold=2.0, tail=tail)
+    signs = _one_sample_draws(n, 30, 4)
+    for b in range(30):
+        # reference: scipy.stats.ttest_1samp of the sign-flipped data; the maximum of t, -t or |t|
+        t = stats.ttest_1samp(Y * signs[b][:, None], 0.0).statistic
+        expected = {"positive": t.max(), "negative": (-t).max(), "two-sided": np.abs(t).max()}[tail]
+        assert result.max_t[b] == pytest.approx(expected, rel=1e-10)
+    oriented = {"positive": result.t, "negative": -result.t, "two-sided": np.abs(result.t)}[tail]
+    # reference: direct counting (Nichols & Holmes 2002)
+    np.testing.assert_allclose(result.p_fwe, [np.mean(result.max_t >= o) for o in oriented])
+
+
+def test_negative_effect_survives_two_sided_and_negative_but_not_positive() -> None:
+    rng = np.random.default_rng(22)
+    shape = (6, 6, 4)
+    Y = smooth_null(rng, 12, shape, 2.0)
+    Y[:, :20] -= 2.5                                    # a planted NEGATIVE effect on 20 voxels
+    p = {}
+    for tail in ("two-sided", "negative", "positive"):
+        result = pm.run_permutation_test(np.ones((12, 1)), Y, np.array([1.0]), np.arange(Y.shape[1]), shape,
+                                         "sign_flip", 200, seed=5, cluster_threshold=stats.t.isf(0.005, 11),
+                                         tfce=True, tfce_step=0.2, tail=tail)
+        p[tail] = result
+    for tail in ("two-sided", "negative"):
+        assert p[tail].p_fwe[:20].max() <= 0.05 and p[tail].p_fwe_tfce[:20].max() <= 0.05
+        assert p[tail].cluster_sign.size and p[tail].cluster_sign[np.argmax(p[tail].extent)] == -1.0
+        assert p[tail].p_fwe_extent[np.argmax(p[tail].extent)] <= 0.05
+    # with the positive tail the planted voxels are the least significant of all
+    assert p["positive"].p_fwe[:20].min() > 0.5
+
+
+def test_two_sided_clusters_of_opposite_sign_stay_apart() -> None:
+    values = np.zeros((5, 5, 5))
+    values[1, 1, 1], values[1, 1, 2] = 4.0, -4.0        # touching voxels of opposite sign
+    grid = clusters.make_spatial_grid(np.arange(values.size), values.shape, 6)
+    labels, extent, mass, sign = pm.signed_clusters(values.ravel(), 2.0, grid, "two-sided")
+    # counted by hand: two one-voxel clusters, masses |t| = 4, signs + and -
+    assert sorted(extent.tolist()) == [1.0, 1.0] and sorted(mass.tolist()) == [4.0, 4.0]
+    assert sorted(sign.tolist()) == [-1.0, 1.0]
+    assert labels[np.ravel_multi_index((1, 1, 1), values.shape)] != labels[np.ravel_multi_index((1, 1, 2),
+                                                                                              values.shape)]
+
+
+def test_observed_cluster_table_is_the_one_format_with_fwe_columns() -> None:
+    rng = np.random.default_rng(23)
+    shape = (8, 8, 4)
+    Y = rng.normal(size=(10, int(np.prod(shape))))
+    volume = np.zeros(shape, dtype=bool)
+    volume[1:4, 1:4, 1:3] = True                       # 18 voxels, positive
+    Y[:, volume.ravel()] += 2.0
+    negative = np.zeros(shape, dtype=bool)
+    negative[5:7, 5:7, 1:3] = True                     # 8 voxels, negative
+    Y[:, negative.ravel()] -= 2.0
+    affine = np.diag([2.0, 2.0, 3.0, 1.0])
+    result = pm.run_permutation_test(np.ones((10, 1)), Y, np.array([1.0]), np.arange(Y.shape[1]), shape,
+                                     "sign_flip", 50, seed=1, cluster_threshold=stats.t.isf(0.01, 9))
+    table, numbers = pm.observed_cluster_table(result, np.arange(Y.shape[1]), shape, affine, 2, 6.0)
+    assert list(table.columns) == clusters.cluster_columns(2, clusters.PERMUTATION_COLUMNS)
+    assert np.all(np.diff(table["size_voxels"].to_numpy()) <= 0)             # largest first
+    for row in table.itertuples():
+        members = numbers == row.cluster_id
+        # the row's size, sign and FWE p are those of the permutation result's cluster at the same voxels
+        old = np.unique(result.labels[members])
+        assert old.size == 1 and members.sum() == row.size_voxels == result.extent[old[0] - 1]
+        assert row.p_fwe_extent == result.p_fwe_extent[old[0] - 1] and row.mass == result.mass[old[0] - 1]
+        assert np.sign(row.peak_stat) == result.cluster_sign[old[0] - 1]
+        assert row.volume_mm3 == pytest.approx(12.0 * row.size_voxels)

@@ -104,3 +104,29 @@ def test_nan_and_invalid_dof_propagate():
     assert stats.t_to_z(0.0, 10) == 0.0
     with pytest.raises(ValueError):
         stats.t_logpvalue(1.0, 10, "left")
+
+
+@pytest.mark.parametrize("tail", ["positive", "negative", "two-sided"])
+@pytest.mark.parametrize("t, dof", [(0.7, 5.0), (-2.0, 12.0), (9.0, 20.0), (-9.0, 20.0), (60.0, 8.0), (-60.0, 8.0),
+                                    (1e30, 20.0), (-1e30, 3.0)])
+def test_t_pvalue_of_each_tail_against_mpmath(t, dof, tail):
+    # reference: mpmath at 50 digits, P(T > t) = I_{d/(d+t^2)}(d/2, 1/2) / 2 for t > 0 (Abramowitz &
+    # Stegun 26.7.1), the lower tail as its complement; two-sided = 2 P(T > |t|)
+    x = mpmath.mpf(dof) / (dof + mpmath.mpf(t) ** 2)
+    far = mpmath.betainc(mpmath.mpf(dof) / 2, mpmath.mpf(1) / 2, 0, x, regularized=True) / 2   # P(T > |t|)
+    upper = far if t > 0 else 1 - far
+    ref = {"positive": upper, "negative": 1 - upper, "two-sided": 2 * far}[tail]
+    got = stats.t_logpvalue(t, dof, tail)
+    assert np.isfinite(got)
+    assert abs(got - float(mpmath.log(ref))) <= 1e-9 * max(1.0, abs(float(mpmath.log(ref))))
+
+
+@pytest.mark.parametrize("tail", ["positive", "negative", "two-sided"])
+def test_t_critical_inverts_the_p_value(tail):
+    p = np.array([0.05, 1e-3, 1e-8])
+    dof = np.array([4.0, 19.0, 120.0])
+    c = stats.t_critical(p, dof, tail)
+    # reference: scipy.stats.t.isf of the one-sided level (p / 2 for two sides)
+    np.testing.assert_allclose(c, sps.t.isf(p / 2 if tail == "two-sided" else p, dof), rtol=1e-12)
+    side = -c if tail == "negative" else c
+    np.testing.assert_allclose(stats.t_pvalue(side, dof, tail), p, rtol=1e-9)

@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from nibabel.affines import apply_affine
-from scipy import ndimage
 from scipy import stats as sps
 
 from glmsteps import threshold
@@ -44,81 +42,6 @@ def test_bonferroni():
     assert threshold.bonferroni_threshold(200, 0.05) == pytest.approx(0.05 / 200)
 
 
-@pytest.mark.parametrize("connectivity, rank", [(6, 1), (18, 2), (26, 3)])
-def test_labels_equal_scipy_ndimage_label(connectivity, rank):
-    rng = np.random.default_rng(connectivity)
-    mask = rng.uniform(size=(12, 11, 10)) < 0.3
-    labels, n = threshold.label_clusters(mask, connectivity)
-    # reference: scipy.ndimage.label with generate_binary_structure(3, rank)
-    ref, n_ref = ndimage.label(mask, structure=ndimage.generate_binary_structure(3, rank))
-    assert n == n_ref
-    # same partition (labels are renumbered largest first)
-    pairs = set(zip(labels[mask].tolist(), ref[mask].tolist()))
-    assert len(pairs) == n_ref
-    assert np.all((labels > 0) == mask)
-    sizes = np.bincount(labels.ravel())[1:]
-    assert np.all(np.diff(sizes) <= 0)
-
-
-def _blob_volume():
-    stat = np.zeros((20, 20, 20))
-    stat[2:6, 2:6, 2:6] = 3.0
-    stat[3, 3, 3] = 7.0                       # peak of cluster 1
-    stat[14:19, 10:18, 10:12] = -4.0
-    stat[15, 11, 10] = -9.0                   # peak of the negative cluster
-    stat[17, 16, 11] = -6.0                   # a sub-peak, far from the peak
-    stat[10, 10, 10] = 5.0                    # single voxel
-    return stat
-
-
-def test_cluster_table_peaks_and_centres_in_world_mm():
-    stat = _blob_volume()
-    affine = np.array([[-2.0, 0, 0, 90], [0, 2.0, 0, -126], [0, 0, 2.5, -72], [0, 0, 0, 1]])
-    labels, n = threshold.label_clusters(stat != 0, 26)
-    table = threshold.cluster_table(stat, labels, affine, voxel_volume_mm3=10.0)
-    assert list(table.columns) == threshold.cluster_columns(3)
-    assert n == 3 and len(table) == 3
-    neg = table.iloc[0]                        # 5*8*2 = 80 voxels, largest
-    assert neg.size_voxels == 80 and neg.volume_mm3 == 800.0 and neg.peak_stat == -9.0
-    # reference: nibabel.affines.apply_affine of the voxel index
-    np.testing.assert_allclose([neg.peak_x_mm, neg.peak_y_mm, neg.peak_z_mm], apply_affine(affine, (15, 11, 10)))
-    np.testing.assert_allclose([neg.subpeak1_x_mm, neg.subpeak1_y_mm, neg.subpeak1_z_mm],
-                               apply_affine(affine, (17, 16, 11)))
-    assert neg.subpeak1_stat == -6.0
-    idx = np.argwhere(labels == 1)
-    np.testing.assert_allclose([neg.centre_x_mm, neg.centre_y_mm, neg.centre_z_mm],
-                               apply_affine(affine, idx).mean(axis=0))
-    cube = table.iloc[1]
-    np.testing.assert_allclose([cube.peak_x_mm, cube.peak_y_mm, cube.peak_z_mm], apply_affine(affine, (3, 3, 3)))
-    # every plateau maximum of the cube lies within 8 mm of its peak: no sub-peak
-    assert np.isnan(cube.subpeak1_stat)
-    single = table.iloc[2]
-    assert single.size_voxels == 1 and np.isnan(single.subpeak1_stat)
-
-
-def test_subpeaks_are_more_than_min_distance_apart():
-    rng = np.random.default_rng(7)
-    stat = ndimage.gaussian_filter(rng.normal(size=(24, 24, 24)), 1.5)
-    stat = np.where(stat > 0, stat, 0)
-    labels, _ = threshold.label_clusters(stat > 0, 26)
-    affine = np.diag([3.0, 3.0, 3.0, 1.0])
-    table = threshold.cluster_table(stat, labels, affine, 27.0, min_distance_mm=8.0)
-    for _, row in table.iterrows():
-        pts = [(row.peak_x_mm, row.peak_y_mm, row.peak_z_mm)]
-        pts += [(row[f"subpeak{k}_x_mm"], row[f"subpeak{k}_y_mm"], row[f"subpeak{k}_z_mm"]) for k in (1, 2, 3)
-                if np.isfinite(row[f"subpeak{k}_stat"])]
-        for a in range(len(pts)):
-            for b in range(a):
-                assert np.linalg.norm(np.subtract(pts[a], pts[b])) > 8.0
-        # the peak has the largest |stat| of its cluster
-        assert abs(row.peak_stat) == pytest.approx(np.abs(stat[labels == row.cluster_id]).max())
-
-
-def test_empty_table_has_header_only():
-    table = threshold.cluster_table(np.zeros((3, 3, 3)), np.zeros((3, 3, 3), int), np.eye(4), 1.0)
-    assert len(table) == 0 and list(table.columns) == threshold.cluster_columns(3)
-
-
 def test_threshold_map_methods():
     rng = np.random.default_rng(8)
     z = rng.normal(size=(10, 10, 10))
@@ -142,7 +65,50 @@ def test_threshold_map_methods():
 def test_bad_settings_are_one_line_config_errors():
     for bad in ({"method": "fdr"}, {"method": "fdr", "q": 2}, {"method": "magic"},
                 {"method": "fdr", "q": 0.05, "connectivity": 8}, {"method": "fdr", "q": 0.05, "min_cluster_voxels": 3},
-                {"method": "cluster_extent", "forming_p": 0.001}):
+                {"method": "cluster_extent", "forming_p": 0.001}, {"method": "fdr", "q": 0.05, "subpeaks": -1},
+                {"method": "fdr", "q": 0.05, "subpeaks": 21}, {"method": "fdr", "q": 0.05, "subpeak_spacing_mm": 0}):
         with pytest.raises(ConfigError) as info:
             threshold.parse_setting({"name": "x", **bad})
         assert "\n" not in str(info.value) and "'x'" in str(info.value)
+
+
+def _signed_blobs():
+    """A positive and a negative blob of equal strength in null noise (z map, two-sided p)."""
+    rng = np.random.default_rng(12)
+    z = rng.normal(size=(16, 16, 10))
+    z[2:6, 2:6, 2:5] = 5.0
+    z[9:13, 9:13, 5:8] = -5.0
+    return z, 2 * sps.norm.sf(np.abs(z))
+
+
+@pytest.mark.parametrize("map_tail", ["two-sided", "positive", "negative"])
+@pytest.mark.parametrize("tail", ["two-sided", "positive", "negative"])
+def test_p_for_tail_gives_the_threshold_tail_whatever_the_map_tail(map_tail, tail):
+    z, _ = _signed_blobs()
+    # reference: scipy.stats.norm, the p of each tail of a standard normal z
+    by_tail = {"positive": sps.norm.sf(z), "negative": sps.norm.cdf(z), "two-sided": 2 * sps.norm.sf(np.abs(z))}
+    p, source = threshold.p_for_tail(z, by_tail[map_tail], "t", map_tail, tail)
+    np.testing.assert_allclose(p, by_tail[tail], rtol=1e-10)
+    assert source.startswith("p map") == (map_tail == tail)
+
+
+def test_p_for_tail_keeps_f_maps_and_unknown_tails():
+    z, p = _signed_blobs()
+    np.testing.assert_array_equal(threshold.p_for_tail(z, p, "F", None, "positive")[0], p)
+    np.testing.assert_array_equal(threshold.p_for_tail(z, p, None, None, "negative")[0], p)
+
+
+@pytest.mark.parametrize("method", [{"method": "fdr", "q": 0.05}, {"method": "bonferroni", "alpha": 0.05},
+                                    {"method": "cluster_extent", "forming_p": 0.001, "min_cluster_voxels": 5}])
+def test_each_tail_keeps_the_blobs_of_its_sign(method):
+    z, _ = _signed_blobs()
+    kept = {}
+    for tail in ("two-sided", "positive", "negative"):
+        setting = threshold.parse_setting({"name": "x", **method, "tail": tail})
+        p, _ = threshold.p_for_tail(z, 2 * sps.norm.sf(np.abs(z)), "t", "two-sided", tail)
+        kept[tail] = threshold.threshold_map(z, p, setting).mask
+    # planted by hand: the positive blob at [2:6, 2:6, 2:5], the negative one at [9:13, 9:13, 5:8]
+    assert kept["two-sided"][3, 3, 3] and kept["two-sided"][10, 10, 6]
+    assert kept["positive"][3, 3, 3] and not kept["positive"][10, 10, 6]
+    assert kept["negative"][10, 10, 6] and not kept["negative"][3, 3, 3]
+    assert not np.any(kept["positive"] & (z < 0)) and not np.any(kept["negative"] & (z > 0))

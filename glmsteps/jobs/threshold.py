@@ -13,10 +13,17 @@ outputs
     header only when nothing survives), ``figure`` (PNG slices through the
     largest cluster's peak).
 
+The p-values tested are those of the setting's tail
+(:func:`glmsteps.threshold.p_for_tail`): the p map's own tail and test kind
+are read from its sidecar (``tail``, ``kind``). The cluster table is
+:func:`glmsteps.clusters.cluster_table` on z, written rounded
+(:func:`glmsteps.clusters.round_cluster_table`).
+
 Sidecars: ``thresholded.json`` (map block of the z map with stat
 ``z_thresholded``), ``mask.json`` (stat ``mask``), ``clusters.json`` and the
 figure's sidecar; all carry the record, ``threshold`` (name), ``setting``,
-``n_tests``, ``p_cutoff``, ``n_clusters``, ``n_voxels`` and ``note``.
+``n_tests``, ``p_cutoff``, ``p_source``, ``n_clusters``, ``n_voxels`` and
+``note``.
 """
 
 from __future__ import annotations
@@ -27,27 +34,46 @@ from typing import Any
 import numpy as np
 
 from .. import provenance
+from ..clusters import cluster_table, round_cluster_table
 from ..combine import check_same_grid
 from ..errors import ConfigError
 from ..fileio import read_json, save_nifti, write_tsv
 from ..maps import load_map
 from ..plots.slices import plot_orthogonal_slices
 from ..plots.style import save_figure
-from ..threshold import cluster_table, parse_setting, threshold_map
+from ..threshold import p_for_tail, parse_setting, threshold_map
 
 STEP = "threshold"
 OUTPUT_KEYS = ("thresholded", "mask", "clusters", "figure")
 
 
-def _z_block(z_path: str, wildcards: Mapping[str, str]) -> dict[str, str]:
-    """The z map's ``map`` block (from its sidecar), or one built from the wildcards."""
-    side = provenance.sidecar_path(z_path)
+def _sidecar(path: str) -> dict[str, Any]:
+    """A map's sidecar as a dict (empty when it has none)."""
+    side = provenance.sidecar_path(path)
     if side.exists():
         info = read_json(side)
-        if isinstance(info, dict) and isinstance(info.get("map"), dict):
-            return dict(info["map"])
+        if isinstance(info, dict):
+            return info
+    return {}
+
+
+def _z_block(z_path: str, wildcards: Mapping[str, str]) -> dict[str, str]:
+    """The z map's ``map`` block (from its sidecar), or one built from the wildcards."""
+    info = _sidecar(z_path)
+    if isinstance(info.get("map"), dict):
+        return dict(info["map"])
     return {"level": "", "subject": str(wildcards.get("subject", "")), "session": "", "task": "", "run": "",
             "contrast": str(wildcards.get("contrast", "")), "stat": "z"}
+
+
+def _test_of(p_path: str) -> tuple[str | None, str | None]:
+    """Kind (``t``/``F``) and tail of the test behind a p map, from its sidecar (None when unknown)."""
+    info = _sidecar(p_path)
+    kind = info.get("kind")
+    tail = info.get("tail")
+    if kind is None and tail is not None:
+        kind = "t"                      # t-only steps (combine_runs) record the tail alone
+    return (str(kind) if kind else None), (str(tail) if tail else None)
 
 
 def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],
@@ -64,15 +90,15 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     under, u_affine = load_map(inputs["underlay"])
     check_same_grid([z.shape, p.shape, under.shape], [affine, p_affine, u_affine],
                     [str(inputs["z"]), str(inputs["p"]), str(inputs["underlay"])])
+    kind, map_tail = _test_of(str(inputs["p"]))
     with provenance.collect_warnings() as seen:
-        result = threshold_map(z, p, setting)
+        p_test, p_source = p_for_tail(z, p, kind, map_tail, setting.tail)  # type: ignore[arg-type]
+        result = threshold_map(z, p_test, setting)
         zooms = np.sqrt((affine[:3, :3] ** 2).sum(axis=0))
-        voxel_volume = float(abs(np.linalg.det(affine[:3, :3])))
-        table = cluster_table(z, result.labels, affine, voxel_volume)
+        table = cluster_table(z, result.labels, affine, setting.subpeaks, setting.subpeak_spacing_mm)
         thresholded = np.where(result.mask, np.nan_to_num(z.astype(np.float64), nan=0.0), 0.0)
         if len(table):
-            peak_xyz = table.loc[0, ["peak_x_mm", "peak_y_mm", "peak_z_mm"]].to_numpy(dtype=np.float64)
-            centre = np.rint(np.linalg.solve(affine, np.append(peak_xyz, 1.0))[:3]).astype(int)
+            centre = table.loc[0, ["peak_i", "peak_j", "peak_k"]].to_numpy(dtype=int)
         else:
             centre = np.array(z.shape) // 2
         block = _z_block(str(inputs["z"]), wildcards)
@@ -85,13 +111,13 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     record = provenance.build_record(STEP, params, {"z": inputs["z"], "p": inputs["p"],
                                                     "underlay": inputs["underlay"]}, warnings_seen=seen)
     extra = {"threshold": setting.name, "setting": dict(params), "n_tests": result.n_tests,
-             "p_cutoff": result.p_cutoff, "n_clusters": result.n_clusters, "n_voxels": int(result.mask.sum()),
+             "p_cutoff": result.p_cutoff, "p_source": p_source, "n_clusters": result.n_clusters, "n_voxels": int(result.mask.sum()),
              "note": result.note, "voxel_size_mm": [float(v) for v in zooms]}
     provenance.write_sidecar(outputs["thresholded"], record, map={**block, "stat": "z_thresholded"}, **extra)
     save_nifti(outputs["thresholded"], thresholded, affine)
     provenance.write_sidecar(outputs["mask"], record, map={**block, "stat": "mask"}, **extra)
     save_nifti(outputs["mask"], result.mask.astype(np.uint8), affine, dtype=np.uint8)
     provenance.write_sidecar(outputs["clusters"], record, **extra)
-    write_tsv(outputs["clusters"], table)
+    write_tsv(outputs["clusters"], round_cluster_table(table))
     provenance.write_sidecar(outputs["figure"], record, **extra)
     save_figure(fig, outputs["figure"])

@@ -1,0 +1,1 @@
+"""Reference data from outside the project (published tables, worked examples), one module per source."""
