@@ -24,7 +24,7 @@ PERMUTATION_TABLE = pd.DataFrame({
 def test_threshold_cluster_table_columns_and_rounding():
     t = tables.cluster_table(THRESHOLD_TABLE, "clusters")
     assert t.columns == ("cluster", "peak x (mm)", "peak y (mm)", "peak z (mm)", "size (voxels)", "volume (mm\u00b3)",
-                         "peak")
+                         "peak statistic")
     # 0.1 mm for coordinates, 3 significant digits for statistics (issue 21)
     assert t.rows[0] == ("1", "-22.0", "-18.0", "26.0", "153", "9792", "6.71")
     # the centre columns are not taken for the peak
@@ -35,7 +35,7 @@ def test_permutation_cluster_table_finds_fwe_p():
     t = tables.cluster_table(PERMUTATION_TABLE, "permutation clusters")
     assert "FWE p (extent)" in t.columns and "FWE p (mass)" in t.columns and "size (voxels)" in t.columns
     row = dict(zip(t.columns, t.rows[1]))
-    assert row["FWE p (extent)"] == "0.820" and row["peak x (mm)"] == "10.0" and row["peak"] == "5.36"
+    assert row["FWE p (extent)"] == "0.820" and row["peak x (mm)"] == "10.0" and row["peak t"] == "5.36"
 
 
 @pytest.mark.parametrize("renamed", [{"peak_x_mm": "x_mm", "peak_y_mm": "y_mm", "peak_z_mm": "z_mm"},
@@ -43,7 +43,8 @@ def test_permutation_cluster_table_finds_fwe_p():
                                      {"peak_stat": "peak_z"}])
 def test_cluster_columns_found_under_other_names(renamed):
     t = tables.cluster_table(THRESHOLD_TABLE.rename(columns=renamed), "clusters")
-    assert {"peak x (mm)", "size (voxels)", "peak", "cluster"} <= set(t.columns)
+    assert {"peak x (mm)", "size (voxels)", "cluster"} <= set(t.columns)
+    assert any(c.startswith("peak ") and "mm" not in c for c in t.columns)
 
 
 def test_empty_and_long_cluster_tables():

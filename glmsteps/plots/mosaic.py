@@ -182,20 +182,19 @@ def compose_mosaic(underlay: npt.NDArray[np.floating], overlay: npt.NDArray[np.f
     rep_x = max(1, int(round(pixels_per_mm * zooms[0])))
     rep_y = max(1, int(round(pixels_per_mm * zooms[1])))
     background, gap = _hex_rgb(BACKGROUND), _hex_rgb(GAP_COLOUR)
-    tiles = []
-    for k in slices:
-        # rows: anterior (high y) at the top; columns: left (low x) on the left
-        u = under[:, ::-1, k].T
-        tile = np.where(inside[:, ::-1, k].T[..., None], _rgb(UNDERLAY_CMAP, (u - lo) / span), background)
-        if over is not None:
-            o = over[:, ::-1, k].T
-            s = shown[:, ::-1, k].T
-            t = (np.abs(o) - low) / (high - low) if high > low else np.ones(o.shape)
-            pos = s & (o > 0)
-            neg = s & (o < 0)
-            tile = np.where(pos[..., None], _rgb(POSITIVE_CMAP, t), tile)
-            tile = np.where(neg[..., None], _rgb(NEGATIVE_CMAP, t), tile)
-        tiles.append(np.repeat(np.repeat(tile, rep_y, axis=0), rep_x, axis=1))
+    # every tile at once: (n_tiles, ny, nx), rows anterior (high y) first, columns left (low x) first
+    pick = np.asarray(slices)
+    u = np.transpose(under[:, ::-1, pick], (2, 1, 0))
+    stack = np.where(np.transpose(inside[:, ::-1, pick], (2, 1, 0))[..., None], _rgb(UNDERLAY_CMAP, (u - lo) / span),
+                     background)
+    if over is not None:
+        o = np.transpose(over[:, ::-1, pick], (2, 1, 0))
+        s = np.transpose(shown[:, ::-1, pick], (2, 1, 0))
+        t = (np.abs(np.nan_to_num(o)) - low) / (high - low) if high > low else np.ones(o.shape)
+        stack = np.where((s & (o > 0))[..., None], _rgb(POSITIVE_CMAP, t), stack)
+        stack = np.where((s & (o < 0))[..., None], _rgb(NEGATIVE_CMAP, t), stack)
+    stack = np.repeat(np.repeat(stack, rep_y, axis=1), rep_x, axis=2)
+    tiles = list(stack)
     columns = max(1, min(columns, len(tiles)))
     rows = -(-len(tiles) // columns)
     th, tw = tiles[0].shape[:2]

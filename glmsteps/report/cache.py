@@ -87,6 +87,15 @@ class FileCache:
         self.folder.mkdir(parents=True, exist_ok=True)
         return None
 
+    def keep(self, name: str) -> bool:
+        """Mark an existing cached file as used (reused); False when it does not exist."""
+        return self._hit(name) is not None
+
+    def record_written(self, name: str) -> None:
+        """Note a file the caller wrote into the cache folder itself."""
+        self._used.add(name)
+        self.written.append(name)
+
     def figure(self, name: str, draw: Callable[[Path], None]) -> Path:
         """The cached figure ``name``, drawn by ``draw(path)`` only when it does not exist.
 

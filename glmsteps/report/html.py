@@ -18,6 +18,9 @@ from .tables import format_number
 
 #: Hex digits of a hash shown on the page (the full hash is in the tooltip).
 SHORT = 12
+#: Lines of an audit chain embedded in a page; a longer chain (a group map's names every subject's
+#: inputs) shows its first lines and links to the whole text file beside the pages.
+MAX_AUDIT_LINES = 80
 
 STYLE = """
 :root { --ink:#2b3440; --paper:#f6f4ee; --ember:#b23a1e; --sand:#f2b880; --teal:#1d5c63; --mist:#9cc5c0;
@@ -73,6 +76,11 @@ details pre { max-height:420px; overflow:auto; background:var(--paper); border:1
 .missing { outline:3px solid var(--ember); }
 .figrow { display:flex; flex-wrap:wrap; gap:14px; align-items:flex-start; }
 .figrow figure { flex:1 1 300px; max-width:560px; }
+.figrow figure.wide { flex-basis:100%; max-width:980px; }
+.figrow figure.small { max-width:420px; }
+.scroll { overflow-x:auto; max-width:100%; }
+.mosaicbox { display:inline-block; max-width:100%; }
+td.id { white-space:nowrap; }
 ul.tight { margin:4px 0; padding-left:20px; }
 """
 
@@ -139,9 +147,16 @@ class _Audits:
                     + "</p></details>")
         anchor = f"audit-{len(self.shown) + 1}"
         self.shown[key] = anchor
-        file_link = f'<p class="note"><a href="{_e(link.audit_href)}">as a text file</a></p>' if link.audit_href else ""
+        lines = link.audit_text.splitlines()
+        text = "\n".join(lines[:MAX_AUDIT_LINES])
+        more = len(lines) - MAX_AUDIT_LINES
+        file_link = ""
+        if link.audit_href:
+            what = f"the whole chain ({len(lines)} lines)" if more > 0 else "as a text file"
+            file_link = f'<p class="note"><a href="{_e(link.audit_href)}">{what}</a></p>'
+        tail = f"\n... {more} more lines in the whole chain (link above)" if more > 0 else ""
         return (f'<details id="{anchor}"><summary>audit chain (plain words, as <code>glmsteps audit</code> '
-                f"prints it)</summary>{file_link}<pre>{_e(link.audit_text)}</pre></details>")
+                f"prints it)</summary>{file_link}<pre>{_e(text + tail)}</pre></details>")
 
 
 def lineage_span(lineage_hash: str) -> str:
@@ -186,18 +201,23 @@ def _scale(scale: tuple[float, float, bool] | None) -> str:
     return '<div class="scale">' + "&nbsp;&nbsp;".join(parts) + "</div>"
 
 
-def render_figure(fig: Figure, audits: _Audits, mosaic: bool = False) -> str:
-    """An image with its caption, its map link, lineage and audit chain."""
-    cls = ' class="mosaic"' if mosaic else ""
-    head = ""
+def render_figure(fig: Figure, audits: _Audits, mosaic: bool = False, size: str = "") -> str:
+    """An image with its caption, its map link, lineage and audit chain.
+
+    ``size`` is ``"wide"`` or ``"small"`` for figures in a row.
+    """
+    classes = [c for c in ("mosaic" if mosaic else "", size) if c]
+    cls = f' class="{" ".join(classes)}"' if classes else ""
+    image = f'<img src="{_e(fig.src)}" alt="{_e(fig.alt)}">'
     tail = ""
     if mosaic:
-        head = '<div class="lr"><span>L</span><span>R</span></div>'
+        image = f'<div class="mosaicbox"><div class="lr"><span>L</span><span>R</span></div>{image}</div>'
         slices = ", ".join(f"{z:.0f}" for z in fig.slice_mm)
         tail = (_scale(fig.scale) + f'<div class="note">axial slices at z = {_e(slices)} mm (world, RAS), '
-                "inferior to superior; the subject's left is on the left (L), anterior at the top</div>")
-    return (f'<figure{cls}>{head}<img src="{_e(fig.src)}" alt="{_e(fig.alt)}">'
-            f"<figcaption>{_e(fig.caption)}</figcaption>{tail}{source_line(fig.source, audits)}</figure>")
+                "inferior to superior, row by row; in every slice the subject's left is on the left (L) and "
+                "anterior is at the top</div>")
+    return (f"<figure{cls}>{image}<figcaption>{_e(fig.caption)}</figcaption>{tail}"
+            f"{source_line(fig.source, audits)}</figure>")
 
 
 def render_table(table: Table, audits: _Audits, sortable: bool = False, table_id: str = "") -> str:
@@ -218,8 +238,8 @@ def render_table(table: Table, audits: _Audits, sortable: bool = False, table_id
             cells.append(f"<td{cls}>{_e(cell)}</td>")
         body.append("<tr>" + "".join(cells) + "</tr>")
     caption = f"<caption>{_e(table.caption)}</caption>" if table.caption else ""
-    return (f"<table{attrs}>{caption}<thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
-            + source_line(table.source, audits))
+    return (f'<div class="scroll"><table{attrs}>{caption}<thead><tr>{head}</tr></thead><tbody>{"".join(body)}'
+            f"</tbody></table></div>" + source_line(table.source, audits))
 
 
 def _looks_numeric(cell: str) -> bool:
@@ -269,15 +289,16 @@ def render_run_table(report: Report, subject_links: bool = True, runs: Sequence[
         subject = (f'<a href="{_e(pages[r.subject])}#run-{_e(r.run_id)}">sub-{_e(r.subject)}</a>'
                    if subject_links and r.subject in pages else f"sub-{_e(r.subject)}")
         status = f"excluded: {_e(r.reason)}" if r.excluded else "kept"
-        cells = [f"<td>{subject}</td>", f"<td>{_e(r.site)}</td>", f"<td>{_e(r.run_id)}</td>", f"<td>{status}</td>"]
+        cells = [f'<td class="id">{subject}</td>', f"<td>{_e(r.site)}</td>", f'<td class="id">{_e(r.run_id)}</td>',
+                 f"<td>{status}</td>"]
         for text, flag in _run_cells(r, keys):
             cells.append(f'<td class="num{" flag" if flag else ""}" data-v="{_e(text)}">{_e(text)}</td>')
         cells.append(f"<td>{_e(', '.join(f.replace('efficiency:', 'efficiency ') for f in flagged))}</td>")
         rows.append(f"<tr{cls}>" + "".join(cells) + "</tr>")
     head_html = "".join(f"<th>{_e(h)}</th>" for h in head)
-    return (f'<table class="sortable" id="run-table"><caption>One row per run; click a column to sort. Motion: '
-            f"the run's motion summary (see the subject page for its source).</caption><thead><tr>{head_html}</tr>"
-            f"</thead><tbody>{''.join(rows)}</tbody></table>")
+    return (f'<div class="scroll"><table class="sortable" id="run-table"><caption>One row per run; click a column '
+            "to sort. Motion: the run's motion summary (see the subject page for its source).</caption><thead><tr>"
+            f"{head_html}</tr></thead><tbody>{''.join(rows)}</tbody></table></div>")
 
 
 def _settings_table(report: Report) -> str:
@@ -286,9 +307,9 @@ def _settings_table(report: Report) -> str:
         settings = "; ".join(s.settings) if s.settings else "none"
         rows.append(f'<tr><td>{_e(s.step)}</td><td>{_e(s.used_by)}</td><td class="lineage" title="{_e(s.params_hash)}">'
                     f"{_e(s.params_hash[:SHORT])}</td><td>{_e(settings)}</td></tr>")
-    return ("<table><caption>Every step's settings, one row per distinct params hash (the sha256 of the settings' "
-            "canonical JSON).</caption><thead><tr><th>step</th><th>used by</th><th>params hash</th><th>settings</th>"
-            f"</tr></thead><tbody>{''.join(rows)}</tbody></table>")
+    return ('<div class="scroll"><table><caption>Every step\'s settings, one row per distinct params hash (the sha256 '
+            "of the settings' canonical JSON).</caption><thead><tr><th>step</th><th>used by</th><th>params hash</th>"
+            f"<th>settings</th></tr></thead><tbody>{''.join(rows)}</tbody></table></div>")
 
 
 def _contrast_block(c: ContrastInfo) -> str:
@@ -310,7 +331,8 @@ def render_map_section(sec: MapSection, audits: _Audits, level: str = "h3") -> s
     for t in sec.tables:
         parts.append(render_table(t, audits))
     if sec.extra_figures:
-        parts.append('<div class="figrow">' + "".join(render_figure(f, audits) for f in sec.extra_figures) + "</div>")
+        parts.append('<div class="figrow">' + "".join(render_figure(f, audits, size="small") for f in sec.extra_figures)
+                     + "</div>")
     parts.append(render_links(sec.links, audits))
     for w in sec.warnings:
         parts.append(f'<div class="warn">warning: {_e(w)}</div>')
@@ -369,7 +391,8 @@ def render_study_page(report: Report) -> str:
     qc_parts = [f'<div class="rule"><b>Outlier rule.</b> {_e(report.outlier_rule)} Applied to every measure below '
                 "and to the design efficiency of each contrast; flagged values are marked &#9650;.</div>",
                 f'<div class="rule"><b>Temporal SNR.</b> {_e(report.tsnr_definition)}</div>',
-                '<div class="figrow">' + "".join(render_figure(f, audits) for f in report.qc_figures) + "</div>",
+                '<div class="figrow">' + "".join(render_figure(f, audits, size="wide" if n == 0 else "")
+                                                 for n, f in enumerate(report.qc_figures)) + "</div>",
                 '<p><label><input type="checkbox" id="only-flagged"> show flagged runs only</label></p>',
                 render_run_table(report)]
 

@@ -125,6 +125,10 @@ def cluster_table(frame: pd.DataFrame, caption: str, source: FileLink | None = N
     """
     found = {key: find_column(frame.columns, patterns) for key, patterns in CLUSTER_COLUMN_PATTERNS.items()}
     shown = [key for key, col in found.items() if col is not None]
+    headers = dict(CLUSTER_HEADERS)
+    if found["peak"] is not None:
+        stat = str(found["peak"]).lower().split("_", 1)[-1]
+        headers["peak"] = "peak statistic" if stat in ("stat", "value") else f"peak {stat}"
     rows = []
     for _, row in frame.head(max_rows).iterrows():
         cells = []
@@ -141,7 +145,7 @@ def cluster_table(frame: pd.DataFrame, caption: str, source: FileLink | None = N
     text = caption + (f" ({more} smaller cluster(s) in the file)" if more > 0 else "")
     if not len(frame):
         text = caption + " (no cluster)"
-    return Table(columns=tuple(CLUSTER_HEADERS[k] for k in shown), rows=tuple(rows), caption=text, source=source)
+    return Table(columns=tuple(headers[k] for k in shown), rows=tuple(rows), caption=text, source=source)
 
 
 def site_table(sites: Mapping[str, Any], source: FileLink | None = None) -> Table | None:
