@@ -12,6 +12,7 @@ rule report:
     output:
         study=REPORT_DIR + "/index.html",
         subject_pages=report_subject_pages(),
+        qc_table=REPORT_DIR + "/qc_runs.tsv",
     params:
         settings=report_params(),
     log:

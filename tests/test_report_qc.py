@@ -177,6 +177,25 @@ def test_scaled_mad_estimates_the_sd_of_normal_data():
     assert abs(scale - 2.0) < 4 * 1.1664 * 2.0 / np.sqrt(x.size)
 
 
+def test_only_the_bad_side_is_flagged():
+    values, sites = _table()
+    assert np.flatnonzero(qc.flag_outliers(values, sites, direction="high")).tolist() == [5]
+    assert np.flatnonzero(qc.flag_outliers(values, sites, direction="low")).tolist() == [10]
+
+
+def test_relative_spread_floor():
+    """Very similar runs (spread 0.1 %) are not flagged for a 0.5 % difference once the SD is at least 5 %
+    of the median; a 30 % difference still is."""
+    values = np.array([100.0, 100.1, 99.9, 100.05, 99.95, 100.02, 99.5, 70.0])
+    sites = ["s"] * 8
+    assert np.flatnonzero(qc.flag_outliers(values, sites)).tolist() == [6, 7]
+    assert np.flatnonzero(qc.flag_outliers(values, sites, min_relative_spread=0.05)).tolist() == [7]
+    # the floor is min_relative_spread x |median|: 70 lies (70 - 100.01) / 5.0005 = -6.0 SDs away
+    z = qc.robust_z(values, sites, min_relative_spread=0.05)
+    assert z[7] == pytest.approx((70.0 - np.median(values)) / (0.05 * np.median(values)))
+
+
 def test_describe_outlier_rule_states_the_numbers():
-    text = qc.describe_outlier_rule(3.0, 5)
-    assert "3 scaled MADs" in text and "fewer than 5 runs" in text and "1.4826" in text
+    text = qc.describe_outlier_rule(3.0, 5, 0.05)
+    assert "more than 3 robust standard deviations" in text and "fewer than 5 runs" in text
+    assert "1.4826" in text and "at least 5% of the median" in text and "low temporal SNR" in text

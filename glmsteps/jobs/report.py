@@ -9,10 +9,11 @@ inputs (named; lists may be empty)
     need not be in any order: files are matched to runs and maps by their
     records (:mod:`glmsteps.report.collect`).
 params
-    ``site_column``, ``outlier_mads``, ``min_site_runs``, ``mosaic_slices``,
+    ``site_column``, ``outlier_mads``, ``min_site_runs``, ``min_relative_spread``, ``mosaic_slices``,
     ``mosaic_columns`` (config section ``report``).
 outputs
-    ``study`` (``index.html``), ``subject_pages`` (list, ``sub-<label>.html``).
+    ``study`` (``index.html``), ``subject_pages`` (list, ``sub-<label>.html``), ``qc_table``
+    (``qc_runs.tsv``: every run's QC numbers and flags, with its fit's lineage hash).
 
 The figures, audit texts and QC numbers live in ``figures/``, ``audit/`` and
 ``qc/`` beside the pages: a cache keyed by lineage hashes that is not a
@@ -30,9 +31,10 @@ from typing import Any
 
 from .. import provenance
 from ..errors import ConfigError
-from ..fileio import write_text
+from ..fileio import write_text, write_tsv
 from ..report.collect import ReportSettings, ReportSources, collect_report, report_facts
 from ..report.html import render_study_page, render_subject_page
+from ..report.tables import run_qc_frame
 
 STEP = "report"
 logger = logging.getLogger("glmsteps")
@@ -50,10 +52,14 @@ def check_params(params: Mapping[str, Any]) -> ReportSettings:
         settings = ReportSettings(site_column=str(p.get("site_column", "site")),
                                   outlier_mads=float(p.get("outlier_mads", 3.0)),
                                   min_site_runs=int(p.get("min_site_runs", 5)),
+                                  min_relative_spread=float(p.get("min_relative_spread", 0.05)),
                                   mosaic_slices=int(p.get("mosaic_slices", 12)),
                                   mosaic_columns=int(p.get("mosaic_columns", 6)))
     except (TypeError, ValueError) as exc:
         raise ConfigError(f"config report: a setting is not a number ({exc}); see config/schema.yaml") from exc
+    if not 0 <= settings.min_relative_spread <= 1:
+        raise ConfigError("config report.min_relative_spread: expected a fraction from 0 to 1, found "
+                          f"{settings.min_relative_spread}")
     if not settings.outlier_mads > 0:
         raise ConfigError(f"config report.outlier_mads: expected a positive number, found {settings.outlier_mads}")
     if settings.min_site_runs < 1 or settings.mosaic_slices < 1 or settings.mosaic_columns < 1:
@@ -88,13 +94,16 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, Any], params: Mapping[s
         wildcards: Mapping[str, str], threads: int = 1) -> None:
     """Write the report pages (see the module docstring)."""
     settings = check_params(params)
-    if "study" not in outputs:
-        raise ConfigError("rule report: output 'study' (index.html) is missing; name it study")
+    for key in ("study", "qc_table"):
+        if key not in outputs:
+            raise ConfigError(f"rule report: output {key!r} is missing; name the outputs study, subject_pages, qc_table")
     sources = sources_from(inputs)
     study = Path(os.fspath(outputs["study"]))
     pages = {Path(p).name: Path(p) for p in _list(outputs, "subject_pages")}
     with provenance.collect_warnings() as seen:
-        report, caches = collect_report(sources, settings, study.parent, root=os.getcwd())
+        qc_table = Path(os.fspath(outputs["qc_table"]))
+        report, caches = collect_report(sources, settings, study.parent, root=os.getcwd(),
+                                        qc_table=os.path.relpath(qc_table, study.parent))
     record = provenance.build_record(STEP, params, {"index": sources.index}, warnings_seen=seen,
                                      **report_facts(report, caches))
     provenance.write_sidecar(study, record)
@@ -110,6 +119,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, Any], params: Mapping[s
         if name not in written:  # a declared page without data (e.g. a subject with no run left)
             write_text(target, f"<!DOCTYPE html>\n<html><body><p>No data for {name}.</p>"
                                '<p><a href="index.html">study page</a></p></body></html>\n')
+    write_tsv(qc_table, run_qc_frame(report.runs, [k for k, _ in report.qc_measures]))
     write_text(study, render_study_page(report))
     removed = [c.prune() for c in (caches.figures, caches.audit, caches.numbers)]
     logger.info("report: %d figure(s) drawn, %d copied, %d reused; %d audit text(s) written; %d stale cache file(s) "

@@ -22,7 +22,9 @@ from ..fileio import atomic_path, write_json, write_text
 from ..provenance import canonical_json
 
 #: Bump when a figure's look changes, so that cached figures are redrawn.
-FIGURE_VERSION = 1
+FIGURE_VERSION = 2
+#: Versions of the other cached kinds (bump when what they hold changes).
+KIND_VERSIONS: dict[str, int] = {"audit": 1, "run-qc": 1, "definition": 1, "copy": 1}
 
 
 def cache_key(kind: str, content: Any) -> str:
@@ -42,7 +44,7 @@ def cache_key(kind: str, content: Any) -> str:
     >>> cache_key("mosaic", {"lineage": "ab"}) == cache_key("mosaic", {"lineage": "ac"})
     False
     """
-    payload = canonical_json({"kind": kind, "version": FIGURE_VERSION, "content": content})
+    payload = canonical_json({"kind": kind, "version": KIND_VERSIONS.get(kind, FIGURE_VERSION), "content": content})
     return hashlib.sha256(payload.encode("utf-8")).hexdigest()[:24]
 
 

@@ -33,7 +33,7 @@ from typing import Any
 import numpy as np
 
 from .. import __version__, audit
-from ..provenance import canonical_json, sidecar_path
+from ..provenance import sidecar_path
 from . import qc, tables
 from .cache import FileCache, cache_key
 from .model import (ContrastInfo, Figure, FileLink, MapSection, ModelSection, Report, RunQc, RunSection,
@@ -50,6 +50,9 @@ QC_MEASURES: dict[str, tuple[str, str]] = {
     "tsnr": ("temporal SNR (median)", ""),
     "ar_median": ("lag-1 AR coefficient (median)", ""),
 }
+#: The side on which each QC measure is bad (the outlier rule flags only that side).
+QC_DIRECTIONS: dict[str, str] = {"censored_fraction": "high", "motion_mean": "high", "motion_max": "high",
+                                 "mean_signal": "both", "tsnr": "low", "ar_median": "both", "efficiency": "low"}
 #: Display cut of a z map drawn without a threshold setting (not a test).
 DISPLAY_Z = 3.09
 _ENTITY = {key: re.compile(rf"(?:^|[_/]){key}-([A-Za-z0-9]+)") for key in ("sub", "ses", "task", "run")}
@@ -62,6 +65,7 @@ class ReportSettings:
     site_column: str = "site"
     outlier_mads: float = 3.0
     min_site_runs: int = 5
+    min_relative_spread: float = 0.05
     mosaic_slices: int = 12
     mosaic_columns: int = 6
 
@@ -590,7 +594,8 @@ class _Warnings:
 
 def collect_report(sources: ReportSources, settings: ReportSettings, report_dir: str | os.PathLike[str],
                    root: str | os.PathLike[str] | None = None, caches: Caches | None = None,
-                   subject_filename: Callable[[str], str] = lambda s: f"sub-{s}.html") -> tuple[Report, Caches]:
+                   subject_filename: Callable[[str], str] = lambda s: f"sub-{s}.html",
+                   qc_table: str = "qc_runs.tsv") -> tuple[Report, Caches]:
     """Read the study and build the :class:`Report` the pages show.
 
     Parameters
@@ -605,6 +610,8 @@ def collect_report(sources: ReportSources, settings: ReportSettings, report_dir:
         Default: ``figures/``, ``audit/`` and ``qc/`` below ``report_dir``.
     subject_filename : callable
         Subject label -> page file name.
+    qc_table : str
+        Name of the QC table beside the pages (the QC figures link to it).
 
     Returns
     -------
@@ -632,13 +639,15 @@ def collect_report(sources: ReportSources, settings: ReportSettings, report_dir:
         values["mean_signal"].append(_finite(s.get("mean_signal")))
         values["tsnr"].append(_finite(s.get("tsnr")))
         values["ar_median"].append(_finite((s.get("ar_quantiles") or [math.nan] * 5)[2]))
-    flags: dict[str, np.ndarray] = {key: qc.flag_outliers(v, site_of_run, settings.outlier_mads, settings.min_site_runs)
-                                    for key, v in values.items()}
+    def flagged(v: Sequence[float], direction: str) -> np.ndarray:
+        return qc.flag_outliers(v, site_of_run, settings.outlier_mads, settings.min_site_runs,
+                                direction, settings.min_relative_spread)  # type: ignore[arg-type]
+
+    flags = {key: flagged(v, QC_DIRECTIONS[key]) for key, v in values.items()}
     contrast_names = sorted(definitions)
     eff_values = {c: [_finite((n.get("efficiency") or {}).get(cache_key("definition", definitions[c])))
                       for n in numbers] for c in contrast_names}
-    eff_flags = {c: qc.flag_outliers(v, site_of_run, settings.outlier_mads, settings.min_site_runs)
-                 for c, v in eff_values.items()}
+    eff_flags = {c: flagged(v, QC_DIRECTIONS["efficiency"]) for c, v in eff_values.items()}
     run_qcs = []
     for i, (r, n) in enumerate(zip(runs, numbers)):
         s = n["signal"]
@@ -648,10 +657,10 @@ def collect_report(sources: ReportSources, settings: ReportSettings, report_dir:
                              values={k: values[k][i] for k in QC_MEASURES},
                              ar_quantiles=tuple(_finite(x) for x in s.get("ar_quantiles") or [math.nan] * 5),
                              efficiency={c: eff_values[c][i] for c in contrast_names}, flags=frozenset(flagged),
-                             motion_source=str(s.get("motion_source", ""))))
+                             motion_source=str(s.get("motion_source", "")), fit_lineage=lineage_of(r.fit_record)))
 
     # ---- QC figures ----------------------------------------------------------------------------
-    qc_figures = _qc_figures(caches, linker, run_qcs, contrast_names)
+    qc_figures = _qc_figures(caches, linker, run_qcs, contrast_names, qc_table)
 
     # ---- subject pages -------------------------------------------------------------------------
     thresholded = _threshold_outputs(records, sources)
@@ -698,7 +707,8 @@ def collect_report(sources: ReportSources, settings: ReportSettings, report_dir:
         sites=dict(sorted(site_counts.items())), runs=tuple(run_qcs), contrasts=tuple(contrasts),
         settings=tuple(settings_rows), qc_figures=tuple(qc_figures),
         qc_measures=tuple((k, f"{label} ({unit})" if unit else label) for k, (label, unit) in QC_MEASURES.items()),
-        outlier_rule=qc.describe_outlier_rule(settings.outlier_mads, settings.min_site_runs),
+        outlier_rule=qc.describe_outlier_rule(settings.outlier_mads, settings.min_site_runs,
+                                              settings.min_relative_spread),
         tsnr_definition=TSNR_DEFINITION, models=tuple(models), subject_pages=tuple(pages),
         excluded_subjects=tuple(excluded_subjects), skipped=tuple(skipped),
         warnings_by_step=dict(sorted(warn.by_step.items())), notes=notes)
@@ -712,8 +722,11 @@ TSNR_DEFINITION = (
     "over its fitted voxels. With percent scaling this is 100 sqrt(g / residual variance).")
 
 
-def _qc_figures(caches: Caches, linker: Linker, run_qcs: Sequence[RunQc], contrasts: Sequence[str]) -> list[Figure]:
+def _qc_figures(caches: Caches, linker: Linker, run_qcs: Sequence[RunQc], contrasts: Sequence[str],
+                qc_table: str) -> list[Figure]:
     from . import figures
+
+    data = FileLink(label=f"{qc_table} (one row per run, with its fit's lineage hash)", href=qc_table)
 
     if not run_qcs:
         return []
@@ -728,7 +741,7 @@ def _qc_figures(caches: Caches, linker: Linker, run_qcs: Sequence[RunQc], contra
                                  lambda p: figures.plot_qc_strips(p, sites, labels, measures))
     out.append(Figure(src=linker.href(file), alt="QC measures of every run by site",
                       caption="Each dot is a run, grouped by site; the line is the site median; runs flagged by the "
-                              "outlier rule are in red and named."))
+                              "outlier rule are in red and named.", source=data))
     order = sorted(range(len(run_qcs)), key=lambda i: (sites[i], labels[i]))
     q = [list(run_qcs[i].ar_quantiles) for i in order]
     ar_flags = ["ar_median" in run_qcs[i].flags for i in order]
@@ -739,7 +752,7 @@ def _qc_figures(caches: Caches, linker: Linker, run_qcs: Sequence[RunQc], contra
         lambda p: figures.plot_ar_distribution(p, [labels[i] for i in order], [sites[i] for i in order], q, ar_flags))
     out.append(Figure(src=linker.href(file), alt="lag-1 AR coefficient distribution of every run",
                       caption="Lag-1 AR coefficient over each run's fitted voxels: thin line 5-95 %, bar 25-75 %, "
-                              "tick median; runs grouped by site."))
+                              "tick median; runs grouped by site.", source=data))
     if contrasts:
         vals = [[r.efficiency.get(c, math.nan) for r in run_qcs] for c in contrasts]
         flg = [[f"efficiency:{c}" in r.flags for r in run_qcs] for c in contrasts]
@@ -751,7 +764,7 @@ def _qc_figures(caches: Caches, linker: Linker, run_qcs: Sequence[RunQc], contra
         out.append(Figure(src=linker.href(file), alt="design efficiency of each contrast in each run",
                           caption="Design efficiency of each contrast in each kept run (log scale; markers by site). "
                                   "Efficiency is 1 / trace(C (X'X)+ C') of the fitted design, as in the contrast "
-                                  "sidecars; higher is better."))
+                                  "sidecars; higher is better.", source=data))
     return out
 
 
@@ -1074,24 +1087,3 @@ def report_facts(report: Report, caches: Caches) -> dict[str, Any]:
         "audit_texts_reused": len(caches.audit.reused), "qc_entries_computed": len(caches.numbers.written),
         "warnings_by_step": dict(report.warnings_by_step),
     }
-
-
-def content_hash(report: Report) -> str:
-    """sha256 of the report model's canonical text (changes exactly when a page would)."""
-    import dataclasses
-    import hashlib
-
-    def plain(obj: Any) -> Any:
-        if dataclasses.is_dataclass(obj):
-            return {f.name: plain(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
-        if isinstance(obj, (list, tuple)):
-            return [plain(x) for x in obj]
-        if isinstance(obj, (set, frozenset)):
-            return sorted(plain(x) for x in obj)
-        if isinstance(obj, Mapping):
-            return {str(k): plain(v) for k, v in obj.items()}
-        if isinstance(obj, float) and not math.isfinite(obj):
-            return str(obj)
-        return obj
-
-    return hashlib.sha256(canonical_json(plain(report)).encode("utf-8")).hexdigest()

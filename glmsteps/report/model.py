@@ -99,6 +99,8 @@ class RunQc:
         QC measures (and ``efficiency:<contrast>``) flagged by the outlier rule.
     motion_source : str
         Where the motion numbers come from.
+    fit_lineage : str
+        Lineage hash of the run's fit (the QC numbers come from it).
     """
 
     subject: str
@@ -114,6 +116,7 @@ class RunQc:
     efficiency: dict[str, float]
     flags: frozenset[str] = frozenset()
     motion_source: str = ""
+    fit_lineage: str = ""
 
 
 @dataclass(frozen=True)

@@ -20,15 +20,21 @@ Temporal SNR
 
 The outlier rule
     A run's value of a QC measure is an outlier when it lies more than ``k``
-    scaled MADs from the median of the runs of its site (scaled MAD =
-    1.4826 x the median absolute deviation from the median, a consistent
+    robust standard deviations from the median of the runs of its site, on
+    the side where the measure is bad (high censored fraction and motion, low
+    temporal SNR and design efficiency, either side for the mean signal and
+    the AR coefficient). The robust standard deviation is the scaled MAD
+    (1.4826 x the median absolute deviation from the median, a consistent
     estimate of the standard deviation for normal data; Rousseeuw & Croux
     (1993), JASA 88:1273; Leys et al. (2013), J. Exp. Soc. Psychol. 49:764
-    recommend k = 2.5 to 3). A site with fewer than ``min_site_runs`` runs
-    with a value is compared with the whole study instead. Where the MAD is 0
-    (more than half the runs share one value), the scale is 1.2533 x the mean
-    absolute deviation from the median (consistent for normal data as well);
-    where that is 0 too, every value equals the median and nothing is flagged.
+    recommend k = 2.5 to 3), but at least ``min_relative_spread`` x
+    ``|median|``, so that runs which differ by a few percent from very
+    similar runs are not flagged. A site with fewer than ``min_site_runs``
+    runs with a value is compared with the whole study instead. Where the MAD
+    is 0 (more than half the runs share one value), the scale is 1.2533 x
+    the mean absolute deviation from the median (consistent for normal data
+    as well); where that and the floor are 0 too, every value equals the
+    median and nothing is flagged.
 """
 
 from __future__ import annotations
@@ -42,6 +48,7 @@ import numpy.typing as npt
 
 FloatArray = npt.NDArray[np.float64]
 NoiseModel = Literal["ols", "ar1", "arp"]
+Direction = Literal["high", "low", "both"]
 Scaling = Literal["percent", "grand_mean", "none"]
 
 #: 1 / Phi^{-1}(3/4): the scaled MAD estimates the SD of normal data (Rousseeuw & Croux 1993).
@@ -284,7 +291,8 @@ def robust_scale(values: npt.ArrayLike) -> tuple[float, float]:
     return med, scale
 
 
-def robust_z(values: npt.ArrayLike, groups: Sequence[str], min_group_size: int = 5) -> FloatArray:
+def robust_z(values: npt.ArrayLike, groups: Sequence[str], min_group_size: int = 5,
+             min_relative_spread: float = 0.0) -> FloatArray:
     """Each value's distance from its group's median in robust SDs.
 
     Parameters
@@ -295,6 +303,8 @@ def robust_z(values: npt.ArrayLike, groups: Sequence[str], min_group_size: int =
         Each run's site.
     min_group_size : int
         A group with fewer finite values is compared with all finite values instead.
+    min_relative_spread : float
+        The robust SD is at least this fraction of ``|median|``.
 
     Returns
     -------
@@ -312,34 +322,49 @@ def robust_z(values: npt.ArrayLike, groups: Sequence[str], min_group_size: int =
         members = g == site
         n_finite = int(np.isfinite(x[members]).sum())
         med, scale = robust_scale(x[members]) if n_finite >= min_group_size else study
+        if np.isfinite(med):
+            scale = max(scale, min_relative_spread * abs(med))
         with np.errstate(divide="ignore", invalid="ignore"):
             z = (x[members] - med) / scale if scale > 0 else np.where(np.isfinite(x[members]), 0.0, np.nan)
         out[members] = z
     return out
 
 
-def flag_outliers(values: npt.ArrayLike, groups: Sequence[str], k: float = 3.0,
-                  min_group_size: int = 5) -> npt.NDArray[np.bool_]:
-    """True where ``|robust_z| > k`` (NaN values are never flagged).
+def flag_outliers(values: npt.ArrayLike, groups: Sequence[str], k: float = 3.0, min_group_size: int = 5,
+                  direction: Direction = "both", min_relative_spread: float = 0.0) -> npt.NDArray[np.bool_]:
+    """True where a value lies more than ``k`` robust SDs from its site's median on the bad side.
 
     Parameters
     ----------
-    values, groups, min_group_size
+    values, groups, min_group_size, min_relative_spread
         As for :func:`robust_z`.
     k : float
         Threshold in robust SDs.
+    direction : {"high", "low", "both"}
+        Which side is bad (``high``: only values above the median are flagged).
 
     Returns
     -------
     ndarray of bool, shape (n,)
+        NaN values are never flagged.
     """
-    z = robust_z(values, groups, min_group_size)
-    return np.isfinite(z) & (np.abs(z) > k)
+    z = robust_z(values, groups, min_group_size, min_relative_spread)
+    if direction == "high":
+        return np.isfinite(z) & (z > k)
+    if direction == "low":
+        return np.isfinite(z) & (z < -k)
+    if direction == "both":
+        return np.isfinite(z) & (np.abs(z) > k)
+    raise ValueError(f"direction must be high, low or both, found {direction!r}")
 
 
-def describe_outlier_rule(k: float, min_group_size: int) -> str:
+def describe_outlier_rule(k: float, min_group_size: int, min_relative_spread: float = 0.0) -> str:
     """The outlier rule in one sentence, as the report states it."""
-    return (f"A value is flagged when it lies more than {k:g} scaled MADs from the median of the runs of its site "
-            f"(scaled MAD = 1.4826 x median absolute deviation, a robust estimate of the standard deviation); "
-            f"a site with fewer than {min_group_size} runs with a value is compared with the whole study; "
-            "where the MAD is 0 the scale is 1.2533 x the mean absolute deviation from the median.")
+    floor = (f", but at least {min_relative_spread:.0%} of the median (runs that differ by a few percent are not "
+             "outliers)") if min_relative_spread > 0 else ""
+    return (f"A value is flagged when it lies more than {k:g} robust standard deviations from the median of the "
+            "runs of its site, on the side where the measure is bad (high censored fraction and motion, low "
+            "temporal SNR and design efficiency, either side for the mean signal and the AR coefficient). The "
+            f"robust standard deviation is the scaled MAD (1.4826 x median absolute deviation){floor}; a site with "
+            f"fewer than {min_group_size} runs with a value is compared with the whole study; where the MAD is 0 "
+            "the scale is 1.2533 x the mean absolute deviation from the median.")

@@ -183,6 +183,43 @@ def site_table(sites: Mapping[str, Any], source: FileLink | None = None) -> Tabl
                  source=source)
 
 
+def run_qc_frame(runs: Sequence[Any], measures: Sequence[str]) -> pd.DataFrame:
+    """The QC numbers of every run as one table (``qc_runs.tsv``), one row per run.
+
+    Parameters
+    ----------
+    runs : sequence of RunQc
+    measures : sequence of str
+        QC measure keys, in column order.
+
+    Returns
+    -------
+    DataFrame
+        Entities, site, status and reason, each measure and its ``<measure>_flagged``, the AR quantiles,
+        each contrast's ``efficiency_<contrast>`` and the fit's lineage hash.
+    """
+    rows = []
+    contrasts = sorted({c for r in runs for c in r.efficiency})
+    for r in runs:
+        row: dict[str, Any] = {"subject": r.subject, "session": r.session or None, "task": r.task, "run": r.run,
+                               "site": r.site, "status": "excluded" if r.excluded else "kept",
+                               "exclusion_reason": r.reason or None}
+        for key in measures:
+            value = r.values.get(key, math.nan)
+            row[key] = value if math.isfinite(value) else None
+            row[f"{key}_flagged"] = key in r.flags
+        for q, value in zip(("05", "25", "50", "75", "95"), r.ar_quantiles):
+            row[f"ar_lag1_q{q}"] = value if math.isfinite(value) else None
+        for c in contrasts:
+            value = r.efficiency.get(c, math.nan)
+            row[f"efficiency_{c}"] = value if math.isfinite(value) else None
+            row[f"efficiency_{c}_flagged"] = f"efficiency:{c}" in r.flags
+        row["motion_source"] = r.motion_source
+        row["fit_lineage_hash"] = r.fit_lineage
+        rows.append(row)
+    return pd.DataFrame(rows)
+
+
 def weights_text(definition: Mapping[str, Any]) -> str:
     """A contrast definition in words: ``tap - flash`` style for t, rows for F.
 
