@@ -22,7 +22,7 @@ from ..fileio import atomic_path, write_json, write_text
 from ..provenance import canonical_json
 
 #: Bump when a figure's look changes, so that cached figures are redrawn.
-FIGURE_VERSION = 2
+FIGURE_VERSION = 3
 #: Versions of the other cached kinds (bump when what they hold changes).
 KIND_VERSIONS: dict[str, int] = {"audit": 1, "run-qc": 1, "definition": 1, "copy": 1}
 

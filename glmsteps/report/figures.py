@@ -45,7 +45,8 @@ def plot_qc_strips(path: str | os.PathLike[str], sites: Sequence[str], labels: S
     ncols = min(n_panels, 3)
     nrows = -(-n_panels // ncols)
     width = max(2.4, 0.55 * len(order) + 1.4)
-    fig, axes = new_figure(width * ncols, 2.3 * nrows, nrows=nrows, ncols=ncols, squeeze=False)
+    fig, axes = new_figure(width * ncols, 2.5 * nrows, nrows=nrows, ncols=ncols, squeeze=False,
+                           gridspec_kw={"hspace": 0.55, "wspace": 0.35})
     site_arr = np.asarray([str(s) for s in sites], dtype=object)
     for ax, (title, values, flags) in zip(axes.flat, measures):
         v = np.asarray(values, dtype=np.float64)

@@ -304,9 +304,15 @@ def render_run_table(report: Report, subject_links: bool = True, runs: Sequence[
 def _settings_table(report: Report) -> str:
     rows = []
     for s in report.settings:
-        settings = "; ".join(s.settings) if s.settings else "none"
+        if s.settings:
+            items = "".join(f"<li>{_e(x)}</li>" for x in s.settings)
+            first = s.settings[0] if len(s.settings[0]) <= 60 else s.settings[0][:57] + "..."
+            settings = (f"<details><summary>{len(s.settings)} setting(s): {_e(first)}</summary>"
+                        f'<ul class="tight">{items}</ul></details>')
+        else:
+            settings = "none"
         rows.append(f'<tr><td>{_e(s.step)}</td><td>{_e(s.used_by)}</td><td class="lineage" title="{_e(s.params_hash)}">'
-                    f"{_e(s.params_hash[:SHORT])}</td><td>{_e(settings)}</td></tr>")
+                    f"{_e(s.params_hash[:SHORT])}</td><td>{settings}</td></tr>")
     return ('<div class="scroll"><table><caption>Every step\'s settings, one row per distinct params hash (the sha256 '
             "of the settings' canonical JSON).</caption><thead><tr><th>step</th><th>used by</th><th>params hash</th>"
             f"<th>settings</th></tr></thead><tbody>{''.join(rows)}</tbody></table></div>")
