@@ -41,3 +41,21 @@ def test_outputs_are_checked_before_reading_anything(tmp_path):
     with pytest.raises(ConfigError) as err:
         job.run({"index": str(tmp_path / "missing.tsv")}, {"study": str(tmp_path / "index.html")}, {}, {})
     assert "qc_table" in str(err.value)
+
+
+@pytest.mark.parametrize("block, mean, largest", [
+    ({"framewise_displacement_mm": {"mean": 0.12, "max": 0.9}}, 0.12, 0.9),
+    ({"mean_fd_mm": 0.2, "max_fd_mm": 1.1, "n_over": 3}, 0.2, 1.1),
+    ({"fd_mean": 0.3}, 0.3, float("nan")),
+])
+def test_motion_block_of_confounds_json_is_read_whatever_its_keys(block, mean, largest):
+    """The confounds step's coming ``motion`` block is used when present, found by key words."""
+    import math
+
+    from glmsteps.report.collect import _motion_from_block
+
+    got = _motion_from_block(block)
+    assert got is not None and got[0] == pytest.approx(mean)
+    assert (math.isnan(got[1]) and math.isnan(largest)) or got[1] == pytest.approx(largest)
+    assert "motion block" in got[2]
+    assert _motion_from_block({"note": "none"}) is None and _motion_from_block(None) is None
