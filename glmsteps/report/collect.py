@@ -711,7 +711,8 @@ def collect_report(sources: ReportSources, settings: ReportSettings, report_dir:
                                               settings.min_relative_spread),
         tsnr_definition=TSNR_DEFINITION, models=tuple(models), subject_pages=tuple(pages),
         excluded_subjects=tuple(excluded_subjects), skipped=tuple(skipped),
-        warnings_by_step=dict(sorted(warn.by_step.items())), notes=notes)
+        warnings_by_step=dict(sorted(warn.by_step.items())), notes=notes,
+        qc_table=FileLink(label=f"{qc_table} (one row per run, with its fit's lineage hash)", href=qc_table))
     return report, caches
 
 

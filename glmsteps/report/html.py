@@ -400,7 +400,7 @@ def render_study_page(report: Report) -> str:
                 '<div class="figrow">' + "".join(render_figure(f, audits, size="wide" if n == 0 else "")
                                                  for n, f in enumerate(report.qc_figures)) + "</div>",
                 '<p><label><input type="checkbox" id="only-flagged"> show flagged runs only</label></p>',
-                render_run_table(report)]
+                render_run_table(report), source_line(report.qc_table, audits)]
 
     subjects = []
     for p in report.subject_pages:

@@ -232,3 +232,4 @@ class Report:
     skipped: tuple[str, ...] = ()
     warnings_by_step: dict[str, int] = field(default_factory=dict)
     notes: tuple[str, ...] = ()
+    qc_table: FileLink | None = None
