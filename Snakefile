@@ -22,7 +22,16 @@ include: "rules/contrasts.smk"
 include: "rules/combine.smk"
 include: "rules/threshold.smk"
 include: "rules/group.smk"
+include: "rules/index.smk"
 include: "rules/report.smk"
+
+
+onsuccess:
+    print_run_summary(OUT, RUN_STARTED, ok=True)
+
+
+onerror:
+    print_run_summary(OUT, RUN_STARTED, ok=False)
 
 
 rule all:

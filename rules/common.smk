@@ -9,6 +9,7 @@ import functools
 import os
 import re
 import sys
+import time
 
 from snakemake.exceptions import WorkflowError
 from snakemake.utils import validate
@@ -17,7 +18,11 @@ from glmsteps.bids import RunKey, check_pattern, discover_runs, parse_run_id
 from glmsteps.errors import ConfigError, GlmstepsError
 from glmsteps.precheck import check_config_contrasts
 from glmsteps.renames import check_renamed
+from glmsteps.report.summary import print_run_summary
 from glmsteps.volumes import bids_sidecar_of
+
+#: When this run started (the end-of-run summary counts the maps written since).
+RUN_STARTED = time.time()
 
 
 def _config_error(message):
@@ -137,6 +142,7 @@ RUN_DIR = OUT + "/sub-{subject}/{run_id}"
 SUBJECT_DIR = OUT + "/sub-{subject}/combined"
 GROUP_DIR = OUT + "/group/model-{model}/contrast-{contrast}/{group_contrast}"
 LOG_DIR = OUT + "/logs"
+REPORT_DIR = OUT + "/report"
 
 
 def _raw(kind, wildcards):
@@ -437,5 +443,56 @@ def indexed_maps():
     return maps
 
 
+# ---------------------------------------------------------------- the report
+def _outputs_of(rule_name, key, combos):
+    """A rule's named output for each wildcard combination (follows the rule if its file names change)."""
+    pattern = getattr(getattr(rules, rule_name).output, key)
+    return [pattern.format(**combo) for combo in combos]
+
+
+def report_inputs(wildcards):
+    """Everything the report shows: the index, the participants table, per-run summaries, fits and figures,
+    subject and group thresholds, group site QC and permutation clusters (run-level thresholds are not
+    shown, so that changing them reruns only their own jobs)."""
+    runs = [{"subject": r.subject, "run_id": r.run_id} for r in RUNS]
+    subject_thr = [{"subject": s, "contrast": c, "threshold": t}
+                   for s in SUBJECTS for c in T_CONTRASTS for t in THRESHOLDS["subject"]]
+    models = [{"model": m, "contrast": c, "group_contrast": g}
+              for m in GROUP_MODELS for c in group_inputs_of(m) for g in group_contrasts_of(m)]
+    group_thr = [dict(combo, threshold=t) for combo in models for t in THRESHOLDS["group"]]
+    permuted = [combo for combo in models if GROUP_MODELS[combo["model"]]["permutation"]]
+    participants = participants_file()
+    return {
+        "index": rules.index.output.index,
+        "participants": [participants] if os.path.isfile(participants) else [],
+        "fit": _outputs_of("fit", "fit", runs),
+        "mean": _outputs_of("fit", "mean", runs),
+        "ar_coef": _outputs_of("fit", "ar_coef", runs),
+        "confounds_summary": _outputs_of("select_confounds", "summary", runs),
+        "confounds_figure": _outputs_of("select_confounds", "figure", runs),
+        "design_summary": _outputs_of("build_design", "summary", runs),
+        "design_figure": _outputs_of("build_design", "figure", runs),
+        "correlation_figure": _outputs_of("build_design", "correlation_figure", runs),
+        "thresholded": _outputs_of("threshold_subject", "thresholded", subject_thr)
+        + _outputs_of("threshold_group", "thresholded", group_thr),
+        "clusters": _outputs_of("threshold_subject", "clusters", subject_thr)
+        + _outputs_of("threshold_group", "clusters", group_thr),
+        "site_qc": _outputs_of("group_model", "site_qc", models),
+        "site_figure": _outputs_of("group_model", "site_figure", models),
+        "permutation_clusters": _outputs_of("group_permutation", "clusters", permuted),
+    }
+
+
+def report_subject_pages():
+    """One page per subject."""
+    return [f"{REPORT_DIR}/sub-{s}.html" for s in SUBJECTS]
+
+
+@_canonical_params
+def report_params():
+    """report: the config's report section (sites for the outlier rule, mosaic layout)."""
+    return dict(config["report"])
+
+
 def all_targets():
-    return run_targets() + subject_targets() + group_targets() + [f"{OUT}/index.tsv"]
+    return run_targets() + subject_targets() + group_targets() + [f"{OUT}/index.tsv", f"{REPORT_DIR}/index.html"]

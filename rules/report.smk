@@ -1,15 +1,21 @@
-# The study's index of every statistical map, with its lineage hash. It only reads the
-# maps' sidecars, so on a cluster it runs on the submitting machine (no cluster job).
+# The study report: results/report/index.html and one page per subject, in ONE job (figures
+# are cached inside it by lineage hash, in folders Snakemake does not manage, so a rerun
+# draws only the figures whose maps changed). It reads files the other steps wrote and
+# draws a few figures, so on a cluster it runs on the submitting machine (no cluster job).
 localrules:
-    index,
+    report,
 
 
-rule index:
+rule report:
     input:
-        maps=indexed_maps(),
+        unpack(report_inputs),
     output:
-        index=OUT + "/index.tsv",
+        study=REPORT_DIR + "/index.html",
+        subject_pages=report_subject_pages(),
+        qc_table=REPORT_DIR + "/qc_runs.tsv",
+    params:
+        settings=report_params(),
     log:
-        LOG_DIR + "/index.log",
+        LOG_DIR + "/report.log",
     script:
-        "../scripts/index.py"
+        "../scripts/report.py"

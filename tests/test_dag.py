@@ -54,9 +54,9 @@ def test_adding_a_contrast_runs_only_its_jobs(toy_results):
     config = copy.deepcopy(toy_results.config)
     config["contrasts"]["tap_minus_flash"] = {"weights": {"tap": 1, "flash": -1}}
     jobs = _plan(toy_results, config)
-    assert _rules(jobs) == {"contrast_t", "threshold_run", "combine_runs", "threshold_subject", "index"}
+    assert _rules(jobs) == {"contrast_t", "threshold_run", "combine_runs", "threshold_subject", "index", "report"}
     for rule, wc in jobs:
-        if rule != "index":
+        if rule not in ("index", "report"):
             assert wc.get("tcon", wc.get("contrast")) == "tap_minus_flash", (rule, wc)
     assert sum(rule == "contrast_t" for rule, _ in jobs) == 24
 
@@ -66,9 +66,9 @@ def test_changing_one_contrast_reruns_only_its_chain(toy_results):
     config["contrasts"]["flash_minus_horn"]["weights"] = {"flash": 2, "horn": -2}
     jobs = _plan(toy_results, config)
     assert _rules(jobs) == {"contrast_t", "threshold_run", "combine_runs", "threshold_subject", "group_model",
-                            "group_permutation", "threshold_group", "index"}
+                            "group_permutation", "threshold_group", "index", "report"}
     for rule, wc in jobs:
-        if rule != "index":
+        if rule not in ("index", "report"):
             assert wc.get("tcon", wc.get("contrast")) == "flash_minus_horn", (rule, wc)
 
 
@@ -111,7 +111,7 @@ def test_editing_one_events_file_reruns_that_subject_and_the_group(toy_results):
     runs = {wc["run_id"] for rule, wc in jobs if "run_id" in wc}
     assert runs == {"task-beacon_run-1"}
     assert {"validate_events", "build_design", "fit", "contrast_t", "combine_runs", "group_model",
-            "group_permutation", "threshold_group", "index"} <= _rules(jobs)
+            "group_permutation", "threshold_group", "index", "report"} <= _rules(jobs)
     assert "select_confounds" not in _rules(jobs)
     assert _plan(toy_results) == []  # restored
 
@@ -119,18 +119,20 @@ def test_editing_one_events_file_reruns_that_subject_and_the_group(toy_results):
 def test_changing_a_group_model_reruns_only_its_jobs(toy_results):
     config = copy.deepcopy(toy_results.config)
     config["group_models"]["everyone"]["estimation"] = "mixed_dl"
-    assert _rules(_plan(toy_results, config)) == {"group_model", "group_permutation", "threshold_group", "index"}
+    assert _rules(_plan(toy_results, config)) == {"group_model", "group_permutation", "threshold_group", "index",
+                                                  "report"}
 
 
 def test_changing_permutation_settings_reruns_only_permutations(toy_results):
     config = copy.deepcopy(toy_results.config)
     config["group_models"]["everyone"]["permutation"]["n_permutations"] = 200
-    assert _rules(_plan(toy_results, config)) == {"group_permutation", "index"}
+    assert _rules(_plan(toy_results, config)) == {"group_permutation", "index", "report"}
 
 
 def test_changing_a_threshold_reruns_only_its_jobs(toy_results):
     config = copy.deepcopy(toy_results.config)
     config["thresholds"]["run"]["fdr05"]["q"] = 0.01
     jobs = _plan(toy_results, config)
+    # the report shows no run-level threshold, so it does not rerun either
     assert _rules(jobs) == {"threshold_run"}
     assert len(jobs) == 24 * 5

@@ -1,0 +1,15 @@
+# The study's index of every statistical map, with its lineage hash. It only reads the
+# maps' sidecars, so on a cluster it runs on the submitting machine (no cluster job).
+localrules:
+    index,
+
+
+rule index:
+    input:
+        maps=indexed_maps(),
+    output:
+        index=OUT + "/index.tsv",
+    log:
+        LOG_DIR + "/index.log",
+    script:
+        "../scripts/index.py"
