@@ -41,9 +41,10 @@ def test_ols_reproduces_nist_longley_certified_values():
     ols = est.fit_ols(design, y)
     beta = ols.beta[:, 0]
     assert design.rank == 7 and design.dof == 9
-    # reference: NIST StRD Longley certified values; 8 correct digits is NIST's usual bar for a
-    # good double-precision solver on this "higher difficulty" set (common practice)
-    assert _log_relative_error(beta, CERTIFIED_BETA).min() >= 8.0
+    # reference: NIST StRD Longley certified values. The SVD pseudo-inverse gets 10.9-13 correct
+    # digits here (measured); the normal equations in double precision get about 6-8 on this
+    # set (from memory), so 10 digits tells a sound solver from inv(X'X)
+    assert _log_relative_error(beta, CERTIFIED_BETA).min() >= 10.0
     sd = np.sqrt(float(ols.residual_variance[0]) * np.diag(design.pinv @ design.pinv.T))
     assert _log_relative_error(sd, CERTIFIED_SD).min() >= 8.0
     assert _log_relative_error(np.sqrt(ols.residual_variance[0]), CERTIFIED_RESIDUAL_SD) >= 8.0
