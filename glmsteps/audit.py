@@ -31,7 +31,8 @@ from pathlib import Path
 from typing import Any, Literal
 
 from .errors import ProvenanceError
-from .provenance import canonical_json, hash_file, hash_params, lineage_hash, read_record, sidecar_path
+from .provenance import (OUTPUT_HASHES_KEY, canonical_json, hash_file, hash_params, lineage_hash, read_record,
+                         sidecar_path)
 
 #: Number of hex digits of a hash shown in text output.
 SHORT_HASH_LENGTH = 12
@@ -48,7 +49,7 @@ RecordLoader = Callable[[str], "Mapping[str, Any] | None"]
 ContentHasher = Callable[[str], "str | None"]
 
 InputKind = Literal["raw", "step", "unresolved"]
-CheckStatus = Literal["ok", "changed", "missing", "stale", "record_missing", "record_inconsistent"]
+CheckStatus = Literal["ok", "changed", "missing", "stale", "record_missing", "record_inconsistent", "unrecorded"]
 
 #: Plain-word labels of known settings: key -> (label, unit). A nested key is
 #: looked up by its full dotted name first, then by its last part; unknown keys
@@ -192,6 +193,9 @@ class StepNode:
     issues : list of str
         Inconsistencies found in the record itself (hashes that do not
         recompute, a cycle).
+    output_hashes : dict of str to str
+        sha256 of the job's outputs as written, by file name (the sidecar's
+        ``output_sha256``; empty for records written before it existed).
     """
 
     number: int
@@ -204,6 +208,7 @@ class StepNode:
     warnings: list[str] = field(default_factory=list)
     inputs: list[FileNode] = field(default_factory=list)
     issues: list[str] = field(default_factory=list)
+    output_hashes: dict[str, str] = field(default_factory=dict)
 
 
 @dataclass
@@ -374,12 +379,15 @@ def build_chain(target: str, record: Mapping[str, Any], load_record: RecordLoade
             raise ProvenanceError(f"{path}: provenance 'params' is not an object; rerun the step that made this file")
         inputs = _require(rec, "inputs", Mapping, path)
         counter[0] += 1
-        node = StepNode(number=counter[0], step=step, outputs=[path], params=dict(params),
+        node = StepNode(number=counter[0], step=step, outputs=[], params=dict(params),
                         params_hash=_require(rec, "params_hash", str, path),
                         lineage_hash=_require(rec, "lineage_hash", str, path),
                         glmsteps_version=rec.get("glmsteps_version"),
                         warnings=[str(w) for w in rec.get("warnings") or []],
-                        issues=record_issues(rec))
+                        issues=record_issues(rec),
+                        output_hashes={str(k): str(v) for k, v in (rec.get(OUTPUT_HASHES_KEY) or {}).items()})
+        if path not in node.outputs:
+            node.outputs.append(path)
         nodes[key] = node
         in_progress.add(key)
         for name, desc in inputs.items():
@@ -552,7 +560,7 @@ def _step_to_dict(node: StepNode, shown: set[int]) -> dict[str, Any]:
         "params": node.params, "settings": describe_params(node.params),
         "params_hash": node.params_hash, "lineage_hash": node.lineage_hash,
         "glmsteps_version": node.glmsteps_version, "warnings": list(node.warnings),
-        "issues": list(node.issues),
+        "issues": list(node.issues), "output_hashes": dict(node.output_hashes),
         "inputs": [{"name": f.name, "index": f.index, "path": f.path, "sha256": f.sha256,
                     "lineage_hash": f.lineage_hash, "step": f.step, "params_hash": f.params_hash,
                     "kind": f.kind,
@@ -577,7 +585,7 @@ def chain_from_dict(data: Mapping[str, Any]) -> Chain:
         node = StepNode(number=int(d["number"]), step=d["step"], outputs=list(d["outputs"]),
                         params=dict(d["params"]), params_hash=d["params_hash"], lineage_hash=d["lineage_hash"],
                         glmsteps_version=d.get("glmsteps_version"), warnings=list(d.get("warnings", [])),
-                        issues=list(d.get("issues", [])))
+                        issues=list(d.get("issues", [])), output_hashes=dict(d.get("output_hashes", {})))
         by_number[node.number] = node
         for f in d["inputs"]:
             node.inputs.append(FileNode(name=f["name"], index=f["index"], path=f["path"], sha256=f["sha256"],
@@ -636,7 +644,7 @@ class Check:
                 "used_by": self.used_by, "detail": self.detail}
 
 
-def verify_chain(chain: Chain, current_sha256: ContentHasher) -> list[Check]:
+def verify_chain(chain: Chain, current_sha256: ContentHasher, target_sha256: str | None = None) -> list[Check]:
     """Re-hash every file the chain records and compare with the recorded sha256.
 
     Parameters
@@ -645,6 +653,10 @@ def verify_chain(chain: Chain, current_sha256: ContentHasher) -> list[Check]:
     current_sha256 : callable
         ``current_sha256(recorded_path) -> hex digest or None if missing``;
         called once per distinct path.
+    target_sha256 : str, optional
+        Current sha256 of the audited output itself; compared with the hash its
+        step recorded when it wrote it (``unrecorded`` when the record has
+        none, e.g. a JSON output, which is its own sidecar).
 
     Returns
     -------
@@ -662,6 +674,18 @@ def verify_chain(chain: Chain, current_sha256: ContentHasher) -> list[Check]:
     """
     cache: dict[str, str | None] = {}
     checks: list[Check] = []
+    if target_sha256 is not None:
+        name = Path(chain.target).name
+        recorded = chain.top.output_hashes.get(name)
+        made_by = f"{chain.top.step} [{chain.top.number}] output"
+        if recorded is None:
+            checks.append(Check(chain.target, "unrecorded", None, target_sha256, made_by,
+                                "its step recorded no sha256 of it, so an edit to it cannot be seen"))
+        elif recorded != target_sha256:
+            checks.append(Check(chain.target, "changed", recorded, target_sha256, made_by,
+                                "content differs from the one its step wrote"))
+        else:
+            checks.append(Check(chain.target, "ok", recorded, target_sha256, made_by))
     for node in iter_steps(chain):
         for issue in node.issues:
             checks.append(Check(node.outputs[0], "record_inconsistent", None, None,
@@ -689,8 +713,8 @@ def verify_chain(chain: Chain, current_sha256: ContentHasher) -> list[Check]:
 
 def render_checks(checks: list[Check]) -> str:
     """Verification results as text: every problem on its own line, then a summary line."""
-    problems = [c for c in checks if c.status != "ok"]
-    lines = []
+    problems = [c for c in checks if c.status not in ("ok", "unrecorded")]
+    lines = [f"NOTE: {c.path}: {c.detail}" for c in checks if c.status == "unrecorded"]
     for c in problems:
         extra = ""
         if c.status in ("changed", "stale"):

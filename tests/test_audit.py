@@ -79,7 +79,11 @@ def make_chain(base: Path, fit_params: dict[str, Any] | None = None,
         rec = provenance.build_record("combine_runs", COMBINE_PARAMS,
                                       {"effect": [f"{RUN}/contrast-a/effect.nii.gz"],
                                        "variance": [f"{RUN}/contrast-a/variance.nii.gz"]})
-        _write_map(Path(TARGET), rec, "z", 1.4)
+        # as a workflow job writes it (glmsteps.jobs.common.run_script): sidecar after the map,
+        # with the map's own sha256
+        with provenance.deferred_sidecars() as pending:
+            _write_map(Path(TARGET), rec, "z", 1.4)
+            provenance.write_deferred_sidecars(pending, [TARGET])
     return base / TARGET
 
 
@@ -189,7 +193,7 @@ def test_lineage_independent_of_absolute_folder_and_mtimes(tmp_path: Path, capsy
 def test_verify_passes_then_names_an_edited_events_file(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     target = make_chain(tmp_path / "w")
     code, out, _ = run_cli(capsys, "audit", target, "--verify")
-    assert code == 0 and "verify: all 6 file(s) match" in out
+    assert code == 0 and "verify: all 7 file(s) match" in out  # 6 inputs and the audited map itself
     with open(tmp_path / "w" / EVENTS_RAW, "a", encoding="utf-8") as handle:
         handle.write("12.0\t2.0\ta\n")
     code, out, _ = run_cli(capsys, "audit", target, "--verify")
@@ -332,3 +336,31 @@ def test_malformed_record_is_a_provenance_error() -> None:
     with pytest.raises(ProvenanceError, match="'lineage_hash'"):
         audit.build_chain("z.nii.gz", {"step": "fit", "params": {}, "params_hash": "x", "inputs": {}},
                           lambda p: None)
+
+
+def test_verify_notices_an_edit_to_the_audited_map_itself(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """Issue 20.4: the map's own sha256 is recorded when written and checked by --verify."""
+    target = make_chain(tmp_path / "w")
+    side = json.loads(provenance.sidecar_path(target).read_text())
+    # reference: hashlib sha256 of the map's bytes
+    assert side[provenance.OUTPUT_HASHES_KEY] == {"z.nii.gz": _sha256_bytes(target.read_bytes())}
+    code, out, _ = run_cli(capsys, "audit", target, "--verify")
+    assert code == 0 and "all" in out.splitlines()[-1]
+    save_nifti(target, np.full((2, 2, 2), 9.9, dtype=np.float32), np.eye(4))   # the map edited in place
+    code, out, _ = run_cli(capsys, "audit", target, "--verify", "--json")
+    assert code == 1
+    bad = [c for c in json.loads(out)["verify"]["checks"] if c["status"] != "ok"]
+    assert [(Path(c["path"]).name, c["status"], c["found"]) for c in bad] == \
+        [("z.nii.gz", "changed", _sha256_bytes(target.read_bytes()))]
+
+
+def test_verify_of_a_map_without_a_recorded_hash_says_so_and_passes(tmp_path: Path,
+                                                                    capsys: pytest.CaptureFixture[str]) -> None:
+    target = make_chain(tmp_path / "w")
+    side = provenance.sidecar_path(target)
+    data = json.loads(side.read_text())
+    del data[provenance.OUTPUT_HASHES_KEY]          # as written by glmsteps before it recorded them
+    side.write_text(json.dumps(data))
+    code, out, _ = run_cli(capsys, "audit", target, "--verify")
+    assert code == 0
+    assert any(line.startswith("NOTE: ") and "recorded no sha256" in line for line in out.splitlines())
