@@ -42,7 +42,7 @@ from ..combine import check_same_grid, fixed_effects, fixed_effects_f, run_contr
 from ..contrasts import MAP_KEYS, contrast_matrix, parse_spec
 from ..errors import ConfigError
 from ..fileio import save_nifti
-from ..maps import unmask
+from ..maps import map_description, statistic_intent, unmask
 from .contrast import contrast_of_fit, contrast_settings, map_block
 
 STEP = "combine_runs"
@@ -134,7 +134,9 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     for stat in keys:
         block = map_block("subject", subject, "", task, "", name, stat)
         provenance.write_sidecar(outputs[stat], record, map=block, **extra_out)
-        save_nifti(outputs[stat], values[stat].reshape(shapes[0]), affines[0])
+        save_nifti(outputs[stat], values[stat].reshape(shapes[0]), affines[0],
+                   intent=statistic_intent(stat, extra_out["dof"], extra_out.get("dof1")),
+                   description=map_description(stat, name, "subject"))
 
 
 def _on_voxels(values: np.ndarray, index: np.ndarray, union: np.ndarray) -> np.ndarray:
