@@ -510,11 +510,16 @@ def render_text(chain: Chain) -> str:
     """
     lines = [f"provenance of {chain.target}" + (f"  (paths relative to {chain.root})" if chain.root else "")]
     shown: set[int] = set()
+    settings_shown: dict[tuple[str, str], int] = {}
 
     def body(node: StepNode, pad: str) -> None:
         shown.add(node.number)
-        settings = describe_params(node.params)
-        lines.append(f"{pad}settings: " + ("; ".join(settings) if settings else "none"))
+        first = settings_shown.setdefault((node.step, node.params_hash), node.number)
+        if first != node.number:
+            lines.append(f"{pad}settings: as step [{first}]")
+        else:
+            settings = describe_params(node.params)
+            lines.append(f"{pad}settings: " + ("; ".join(settings) if settings else "none"))
         if node.glmsteps_version:
             lines.append(f"{pad}written by glmsteps {node.glmsteps_version}")
         for w in node.warnings:
@@ -548,6 +553,89 @@ def render_text(chain: Chain) -> str:
     lines.append(f"{len(steps)} step(s); {len(raws)} raw input(s):")
     for f in raws:
         lines.append(f"    {f.path}  sha256 {short_hash(f.sha256)}")
+    return "\n".join(lines) + "\n"
+
+
+@dataclass(frozen=True)
+class StepSummary:
+    """All jobs of one step with the same settings, in a chain.
+
+    Attributes
+    ----------
+    step : str
+    params_hash : str
+    params : dict
+    n_jobs : int
+        Distinct jobs of this step with these settings.
+    warnings : list of str
+        Their warnings, each once.
+    """
+
+    step: str
+    params_hash: str
+    params: dict[str, Any]
+    n_jobs: int
+    warnings: list[str]
+
+
+def summarise_steps(chain: Chain) -> list[StepSummary]:
+    """The chain's steps grouped by (step, settings), top first, in order of first appearance."""
+    groups: dict[tuple[str, str], list[StepNode]] = {}
+    for node in iter_steps(chain):
+        groups.setdefault((node.step, node.params_hash), []).append(node)
+    out = []
+    for (step, params_hash), nodes in groups.items():
+        warned = list(dict.fromkeys(w for n in nodes for w in n.warnings))
+        out.append(StepSummary(step, params_hash, nodes[0].params, len(nodes), warned))
+    return out
+
+
+def render_summary(chain: Chain) -> str:
+    """The chain in short: each step once with its settings and job count, the raw inputs by kind.
+
+    Parameters
+    ----------
+    chain : Chain
+
+    Returns
+    -------
+    str
+        What ``glmsteps audit`` prints by default; ``--full`` prints
+        :func:`render_text`, every job and file.
+    """
+    lines = [f"provenance of {chain.target}" + (f"  (paths relative to {chain.root})" if chain.root else ""),
+             f"made by {chain.top.step}  params {short_hash(chain.top.params_hash)}  "
+             f"lineage {short_hash(chain.top.lineage_hash)}"]
+    summaries = summarise_steps(chain)
+    n_jobs = sum(s.n_jobs for s in summaries)
+    lines.append(f"{n_jobs} job(s) of {len({s.step for s in summaries})} step(s), each setting shown once:")
+    for s in summaries:
+        settings = describe_params(s.params)
+        jobs = f"{s.n_jobs} job{'s' if s.n_jobs != 1 else ''}"
+        lines.append(f"  {s.step} ({jobs}, params {short_hash(s.params_hash)}): "
+                     + ("; ".join(settings) if settings else "no settings"))
+        for w in s.warnings:
+            lines.append(f"      warning: {w}")
+    for node in iter_steps(chain):
+        for issue in node.issues:
+            lines.append(f"  ! {node.step} [{node.number}]: {issue}")
+    raws = raw_inputs(chain)
+    kinds: dict[str, list[FileNode]] = {}
+    for node in iter_steps(chain):
+        for f in node.inputs:
+            if f.kind == "raw":
+                kinds.setdefault(f.name, [])
+                if all((g.path, g.sha256) != (f.path, f.sha256) for g in kinds[f.name]):
+                    kinds[f.name].append(f)
+    lines.append(f"{len(raws)} raw input(s):")
+    for name, files in kinds.items():
+        example = files[0]
+        more = f" and {len(files) - 1} more" if len(files) > 1 else ""
+        lines.append(f"  {name}: {len(files)} file(s), e.g. {example.path}  sha256 {short_hash(example.sha256)}{more}")
+    unresolved = [f for n in iter_steps(chain) for f in n.inputs if f.kind == "unresolved"]
+    if unresolved:
+        lines.append(f"! {len(unresolved)} produced input(s) have no record (e.g. {unresolved[0].path})")
+    lines.append("every job and file: glmsteps audit --full")
     return "\n".join(lines) + "\n"
 
 
@@ -839,7 +927,8 @@ def diff_chains(a: Chain, b: Chain) -> ChainDiff:
                                                             f"input {present.label} only in {side} ({present.path})"))
                 continue
             if fa_.kind == "raw" and fb_.kind == "raw":
-                if fa_.sha256 != fb_.sha256 or fa_.path != fb_.path:
+                # the same bytes at another path are the same input: paths never count as a difference
+                if fa_.sha256 != fb_.sha256:
                     result.inputs.append(InputDifference(na.step, out_a, out_b, fa_.label, fa_.path, fb_.path,
                                                          fa_.sha256, fb_.sha256))
             elif fa_.lineage_hash == fb_.lineage_hash:

@@ -364,3 +364,51 @@ def test_verify_of_a_map_without_a_recorded_hash_says_so_and_passes(tmp_path: Pa
     code, out, _ = run_cli(capsys, "audit", target, "--verify")
     assert code == 0
     assert any(line.startswith("NOTE: ") and "recorded no sha256" in line for line in out.splitlines())
+
+
+def _fan_in_chain(base: Path, fit_params: dict[str, Any], data_folder: str = "data") -> Path:
+    """Three runs fitted with the same settings, combined into one map (records as the jobs write them)."""
+    base.mkdir(parents=True, exist_ok=True)
+    with contextlib.chdir(base):
+        fits = []
+        for run in (1, 2, 3):
+            raw = Path(f"{data_folder}/sub-01_run-{run}_bold.nii")
+            raw.parent.mkdir(parents=True, exist_ok=True)
+            raw.write_bytes(_bold_bytes() + bytes([run]))
+            rec = provenance.build_record("fit", fit_params, {"bold": str(raw)})
+            fit = Path(f"out/run-{run}/fit.json.txt")
+            provenance.write_sidecar(fit, rec)
+            fit.parent.mkdir(parents=True, exist_ok=True)
+            fit.write_text(f"fit {run}\n")
+            fits.append(str(fit))
+        rec = provenance.build_record("combine_runs", COMBINE_PARAMS, {"fit": fits})
+        _write_map(Path(TARGET), rec, "z", 1.0)
+    return base / TARGET
+
+
+def test_short_audit_shows_each_step_once_and_full_audit_each_setting_once(tmp_path, capsys):
+    """Issue 21: a chain with many jobs of one step prints each step's settings once by default."""
+    target = _fan_in_chain(tmp_path / "w", FIT_PARAMS)
+    chain = audit.load_chain(target)
+    short = audit.render_summary(chain)
+    fit_lines = [line for line in short.splitlines() if line.strip().startswith("fit (")]
+    assert fit_lines == [fit_lines[0]] and "3 jobs" in fit_lines[0] and "autocorrelation model: ar1" in fit_lines[0]
+    assert "bold: 3 file(s)" in short and short.count("autocorrelation model") == 1
+    code, out, _ = run_cli(capsys, "audit", target)
+    assert code == 0 and out == short
+    full = audit.render_text(chain)
+    assert full.count("autocorrelation model: ar1") == 1 and full.count("settings: as step [2]") == 2
+    code, out, _ = run_cli(capsys, "audit", target, "--full")
+    assert out == full
+
+
+def test_diff_never_counts_a_path_alone_as_a_difference(tmp_path, capsys):
+    """Issue 21: the same raw bytes under another folder are the same input."""
+    a = _fan_in_chain(tmp_path / "a", FIT_PARAMS, data_folder="data")
+    b = _fan_in_chain(tmp_path / "b", {**FIT_PARAMS, "autocorrelation": "ols"}, data_folder="elsewhere/raw")
+    result = audit.diff_chains(audit.load_chain(a), audit.load_chain(b))
+    assert not result.identical and result.inputs == [] and result.structure == []
+    assert {(d.step, d.key, d.value_a, d.value_b) for d in result.settings} == {("fit", "autocorrelation", "ar1", "ols")}
+    same = _fan_in_chain(tmp_path / "c", FIT_PARAMS, data_folder="moved")
+    code, out, _ = run_cli(capsys, "diff", a, same)
+    assert code == 0 and "identical lineage" in out
