@@ -55,6 +55,7 @@ def setup_logging(log_path: str | None) -> logging.Logger:
     fmt = logging.Formatter("%(asctime)s %(levelname)s %(message)s")
     handlers: list[logging.Handler] = [logging.StreamHandler(sys.stderr)]
     if log_path:
+        Path(log_path).parent.mkdir(parents=True, exist_ok=True)
         handlers.append(logging.FileHandler(log_path, mode="w", encoding="utf-8"))
     for h in handlers:
         h.setFormatter(fmt)
