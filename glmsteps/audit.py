@@ -31,7 +31,8 @@ from pathlib import Path
 from typing import Any, Literal
 
 from .errors import ProvenanceError
-from .provenance import canonical_json, hash_file, hash_params, lineage_hash, read_record, sidecar_path
+from .provenance import (OUTPUT_HASHES_KEY, canonical_json, hash_file, hash_params, lineage_hash, read_record,
+                         sidecar_path)
 
 #: Number of hex digits of a hash shown in text output.
 SHORT_HASH_LENGTH = 12
@@ -48,7 +49,7 @@ RecordLoader = Callable[[str], "Mapping[str, Any] | None"]
 ContentHasher = Callable[[str], "str | None"]
 
 InputKind = Literal["raw", "step", "unresolved"]
-CheckStatus = Literal["ok", "changed", "missing", "stale", "record_missing", "record_inconsistent"]
+CheckStatus = Literal["ok", "changed", "missing", "stale", "record_missing", "record_inconsistent", "unrecorded"]
 
 #: Plain-word labels of known settings: key -> (label, unit). A nested key is
 #: looked up by its full dotted name first, then by its last part; unknown keys
@@ -192,6 +193,9 @@ class StepNode:
     issues : list of str
         Inconsistencies found in the record itself (hashes that do not
         recompute, a cycle).
+    output_hashes : dict of str to str
+        sha256 of the job's outputs as written, by file name (the sidecar's
+        ``output_sha256``; empty for records written before it existed).
     """
 
     number: int
@@ -204,6 +208,7 @@ class StepNode:
     warnings: list[str] = field(default_factory=list)
     inputs: list[FileNode] = field(default_factory=list)
     issues: list[str] = field(default_factory=list)
+    output_hashes: dict[str, str] = field(default_factory=dict)
 
 
 @dataclass
@@ -374,12 +379,15 @@ def build_chain(target: str, record: Mapping[str, Any], load_record: RecordLoade
             raise ProvenanceError(f"{path}: provenance 'params' is not an object; rerun the step that made this file")
         inputs = _require(rec, "inputs", Mapping, path)
         counter[0] += 1
-        node = StepNode(number=counter[0], step=step, outputs=[path], params=dict(params),
+        node = StepNode(number=counter[0], step=step, outputs=[], params=dict(params),
                         params_hash=_require(rec, "params_hash", str, path),
                         lineage_hash=_require(rec, "lineage_hash", str, path),
                         glmsteps_version=rec.get("glmsteps_version"),
                         warnings=[str(w) for w in rec.get("warnings") or []],
-                        issues=record_issues(rec))
+                        issues=record_issues(rec),
+                        output_hashes={str(k): str(v) for k, v in (rec.get(OUTPUT_HASHES_KEY) or {}).items()})
+        if path not in node.outputs:
+            node.outputs.append(path)
         nodes[key] = node
         in_progress.add(key)
         for name, desc in inputs.items():
@@ -502,11 +510,16 @@ def render_text(chain: Chain) -> str:
     """
     lines = [f"provenance of {chain.target}" + (f"  (paths relative to {chain.root})" if chain.root else "")]
     shown: set[int] = set()
+    settings_shown: dict[tuple[str, str], int] = {}
 
     def body(node: StepNode, pad: str) -> None:
         shown.add(node.number)
-        settings = describe_params(node.params)
-        lines.append(f"{pad}settings: " + ("; ".join(settings) if settings else "none"))
+        first = settings_shown.setdefault((node.step, node.params_hash), node.number)
+        if first != node.number:
+            lines.append(f"{pad}settings: as step [{first}]")
+        else:
+            settings = describe_params(node.params)
+            lines.append(f"{pad}settings: " + ("; ".join(settings) if settings else "none"))
         if node.glmsteps_version:
             lines.append(f"{pad}written by glmsteps {node.glmsteps_version}")
         for w in node.warnings:
@@ -543,6 +556,89 @@ def render_text(chain: Chain) -> str:
     return "\n".join(lines) + "\n"
 
 
+@dataclass(frozen=True)
+class StepSummary:
+    """All jobs of one step with the same settings, in a chain.
+
+    Attributes
+    ----------
+    step : str
+    params_hash : str
+    params : dict
+    n_jobs : int
+        Distinct jobs of this step with these settings.
+    warnings : list of str
+        Their warnings, each once.
+    """
+
+    step: str
+    params_hash: str
+    params: dict[str, Any]
+    n_jobs: int
+    warnings: list[str]
+
+
+def summarise_steps(chain: Chain) -> list[StepSummary]:
+    """The chain's steps grouped by (step, settings), top first, in order of first appearance."""
+    groups: dict[tuple[str, str], list[StepNode]] = {}
+    for node in iter_steps(chain):
+        groups.setdefault((node.step, node.params_hash), []).append(node)
+    out = []
+    for (step, params_hash), nodes in groups.items():
+        warned = list(dict.fromkeys(w for n in nodes for w in n.warnings))
+        out.append(StepSummary(step, params_hash, nodes[0].params, len(nodes), warned))
+    return out
+
+
+def render_summary(chain: Chain) -> str:
+    """The chain in short: each step once with its settings and job count, the raw inputs by kind.
+
+    Parameters
+    ----------
+    chain : Chain
+
+    Returns
+    -------
+    str
+        What ``glmsteps audit`` prints by default; ``--full`` prints
+        :func:`render_text`, every job and file.
+    """
+    lines = [f"provenance of {chain.target}" + (f"  (paths relative to {chain.root})" if chain.root else ""),
+             f"made by {chain.top.step}  params {short_hash(chain.top.params_hash)}  "
+             f"lineage {short_hash(chain.top.lineage_hash)}"]
+    summaries = summarise_steps(chain)
+    n_jobs = sum(s.n_jobs for s in summaries)
+    lines.append(f"{n_jobs} job(s) of {len({s.step for s in summaries})} step(s), each setting shown once:")
+    for s in summaries:
+        settings = describe_params(s.params)
+        jobs = f"{s.n_jobs} job{'s' if s.n_jobs != 1 else ''}"
+        lines.append(f"  {s.step} ({jobs}, params {short_hash(s.params_hash)}): "
+                     + ("; ".join(settings) if settings else "no settings"))
+        for w in s.warnings:
+            lines.append(f"      warning: {w}")
+    for node in iter_steps(chain):
+        for issue in node.issues:
+            lines.append(f"  ! {node.step} [{node.number}]: {issue}")
+    raws = raw_inputs(chain)
+    kinds: dict[str, list[FileNode]] = {}
+    for node in iter_steps(chain):
+        for f in node.inputs:
+            if f.kind == "raw":
+                kinds.setdefault(f.name, [])
+                if all((g.path, g.sha256) != (f.path, f.sha256) for g in kinds[f.name]):
+                    kinds[f.name].append(f)
+    lines.append(f"{len(raws)} raw input(s):")
+    for name, files in kinds.items():
+        example = files[0]
+        more = f" and {len(files) - 1} more" if len(files) > 1 else ""
+        lines.append(f"  {name}: {len(files)} file(s), e.g. {example.path}  sha256 {short_hash(example.sha256)}{more}")
+    unresolved = [f for n in iter_steps(chain) for f in n.inputs if f.kind == "unresolved"]
+    if unresolved:
+        lines.append(f"! {len(unresolved)} produced input(s) have no record (e.g. {unresolved[0].path})")
+    lines.append("every job and file: glmsteps audit --full")
+    return "\n".join(lines) + "\n"
+
+
 def _step_to_dict(node: StepNode, shown: set[int]) -> dict[str, Any]:
     if node.number in shown:
         return {"see_step": node.number}
@@ -552,7 +648,7 @@ def _step_to_dict(node: StepNode, shown: set[int]) -> dict[str, Any]:
         "params": node.params, "settings": describe_params(node.params),
         "params_hash": node.params_hash, "lineage_hash": node.lineage_hash,
         "glmsteps_version": node.glmsteps_version, "warnings": list(node.warnings),
-        "issues": list(node.issues),
+        "issues": list(node.issues), "output_hashes": dict(node.output_hashes),
         "inputs": [{"name": f.name, "index": f.index, "path": f.path, "sha256": f.sha256,
                     "lineage_hash": f.lineage_hash, "step": f.step, "params_hash": f.params_hash,
                     "kind": f.kind,
@@ -577,7 +673,7 @@ def chain_from_dict(data: Mapping[str, Any]) -> Chain:
         node = StepNode(number=int(d["number"]), step=d["step"], outputs=list(d["outputs"]),
                         params=dict(d["params"]), params_hash=d["params_hash"], lineage_hash=d["lineage_hash"],
                         glmsteps_version=d.get("glmsteps_version"), warnings=list(d.get("warnings", [])),
-                        issues=list(d.get("issues", [])))
+                        issues=list(d.get("issues", [])), output_hashes=dict(d.get("output_hashes", {})))
         by_number[node.number] = node
         for f in d["inputs"]:
             node.inputs.append(FileNode(name=f["name"], index=f["index"], path=f["path"], sha256=f["sha256"],
@@ -636,7 +732,7 @@ class Check:
                 "used_by": self.used_by, "detail": self.detail}
 
 
-def verify_chain(chain: Chain, current_sha256: ContentHasher) -> list[Check]:
+def verify_chain(chain: Chain, current_sha256: ContentHasher, target_sha256: str | None = None) -> list[Check]:
     """Re-hash every file the chain records and compare with the recorded sha256.
 
     Parameters
@@ -645,6 +741,10 @@ def verify_chain(chain: Chain, current_sha256: ContentHasher) -> list[Check]:
     current_sha256 : callable
         ``current_sha256(recorded_path) -> hex digest or None if missing``;
         called once per distinct path.
+    target_sha256 : str, optional
+        Current sha256 of the audited output itself; compared with the hash its
+        step recorded when it wrote it (``unrecorded`` when the record has
+        none, e.g. a JSON output, which is its own sidecar).
 
     Returns
     -------
@@ -662,6 +762,18 @@ def verify_chain(chain: Chain, current_sha256: ContentHasher) -> list[Check]:
     """
     cache: dict[str, str | None] = {}
     checks: list[Check] = []
+    if target_sha256 is not None:
+        name = Path(chain.target).name
+        recorded = chain.top.output_hashes.get(name)
+        made_by = f"{chain.top.step} [{chain.top.number}] output"
+        if recorded is None:
+            checks.append(Check(chain.target, "unrecorded", None, target_sha256, made_by,
+                                "its step recorded no sha256 of it, so an edit to it cannot be seen"))
+        elif recorded != target_sha256:
+            checks.append(Check(chain.target, "changed", recorded, target_sha256, made_by,
+                                "content differs from the one its step wrote"))
+        else:
+            checks.append(Check(chain.target, "ok", recorded, target_sha256, made_by))
     for node in iter_steps(chain):
         for issue in node.issues:
             checks.append(Check(node.outputs[0], "record_inconsistent", None, None,
@@ -689,8 +801,8 @@ def verify_chain(chain: Chain, current_sha256: ContentHasher) -> list[Check]:
 
 def render_checks(checks: list[Check]) -> str:
     """Verification results as text: every problem on its own line, then a summary line."""
-    problems = [c for c in checks if c.status != "ok"]
-    lines = []
+    problems = [c for c in checks if c.status not in ("ok", "unrecorded")]
+    lines = [f"NOTE: {c.path}: {c.detail}" for c in checks if c.status == "unrecorded"]
     for c in problems:
         extra = ""
         if c.status in ("changed", "stale"):
@@ -815,7 +927,8 @@ def diff_chains(a: Chain, b: Chain) -> ChainDiff:
                                                             f"input {present.label} only in {side} ({present.path})"))
                 continue
             if fa_.kind == "raw" and fb_.kind == "raw":
-                if fa_.sha256 != fb_.sha256 or fa_.path != fb_.path:
+                # the same bytes at another path are the same input: paths never count as a difference
+                if fa_.sha256 != fb_.sha256:
                     result.inputs.append(InputDifference(na.step, out_a, out_b, fa_.label, fa_.path, fb_.path,
                                                          fa_.sha256, fb_.sha256))
             elif fa_.lineage_hash == fb_.lineage_hash:

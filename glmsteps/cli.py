@@ -43,6 +43,8 @@ def build_parser() -> argparse.ArgumentParser:
                        help="folder the workflow ran in (recorded paths are relative to it); "
                             "default: found by walking up from PATH")
     audit.add_argument("--json", action="store_true", help="print JSON instead of text")
+    audit.add_argument("--full", action="store_true",
+                       help="every job and file of the chain (default: each step once, raw inputs by kind)")
     audit.add_argument("--verify", action="store_true",
                        help="re-hash the recorded files; exit 1 if any changed or is missing")
 
@@ -70,14 +72,15 @@ def _run_audit(args: argparse.Namespace) -> int:
     checks = None
     if args.verify:
         root = chain.root
-        checks = audit.verify_chain(chain, lambda p: audit.current_sha256(p, root))
+        checks = audit.verify_chain(chain, lambda p: audit.current_sha256(p, root),
+                                    target_sha256=audit.hash_file(args.path))
     if args.json:
         sys.stdout.write(audit.render_json(chain, checks))
     else:
-        sys.stdout.write(audit.render_text(chain))
+        sys.stdout.write(audit.render_text(chain) if args.full else audit.render_summary(chain))
         if checks is not None:
             sys.stdout.write(audit.render_checks(checks))
-    if checks is not None and any(c.status != "ok" for c in checks):
+    if checks is not None and any(c.status not in ("ok", "unrecorded") for c in checks):
         return EXIT_DIFFERS
     return EXIT_OK
 

@@ -13,6 +13,7 @@ import json
 import os
 import uuid
 from collections.abc import Iterator
+from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -156,8 +157,29 @@ def read_numeric_tsv(path: str | os.PathLike[str]) -> tuple[list[str], np.ndarra
     return header, values
 
 
+@dataclass(frozen=True)
+class MapIntent:
+    """What a statistical map holds, for its NIfTI header.
+
+    Attributes
+    ----------
+    code : str
+        nibabel's name of the NIfTI-1 intent code (``"t test"``, ``"f test"``,
+        ``"z score"``, ``"p value"``, ``"estimate"``, ``"none"``).
+    parameters : tuple of float
+        The intent parameters (t: dof; F: numerator and denominator dof).
+    name : str
+        Short intent name (at most 15 characters), e.g. ``"effect"``.
+    """
+
+    code: str = "none"
+    parameters: tuple[float, ...] = ()
+    name: str = ""
+
+
 def save_nifti(path: str | os.PathLike[str], data: np.ndarray, affine: np.ndarray,
-               header: Any | None = None, dtype: Any = np.float32) -> None:
+               header: Any | None = None, dtype: Any = np.float32, intent: MapIntent | None = None,
+               description: str = "") -> None:
     """Save a 3D or 4D array as NIfTI-1 atomically.
 
     Parameters
@@ -167,14 +189,35 @@ def save_nifti(path: str | os.PathLike[str], data: np.ndarray, affine: np.ndarra
     data : ndarray, shape (nx, ny, nz) or (nx, ny, nz, nt)
         Values; cast to ``dtype`` (float32 for stored maps).
     affine : ndarray, shape (4, 4)
-        Voxel-to-world transform in mm.
+        Voxel-to-world transform in mm; stored as both sform and qform (code 2,
+        "aligned"; the qform drops any shear, the sform keeps the affine exactly).
     header : nibabel header, optional
         Template header (units, TR) to copy.
+    intent : MapIntent, optional
+        The statistic the map holds (NIfTI-1 intent code and parameters).
+    description : str
+        Short text for the header's ``descrip`` field (cut to 79 characters).
+
+    Notes
+    -----
+    Spatial units are mm; a time unit (s) is set only on 4D images.
     """
+    import warnings
+
     import nibabel as nib
 
-    img = nib.Nifti1Image(np.asarray(data, dtype=dtype), np.asarray(affine, dtype=np.float64), header=header)
+    arr = np.asarray(data, dtype=dtype)
+    aff = np.asarray(affine, dtype=np.float64)
+    img = nib.Nifti1Image(arr, aff, header=header)
     img.set_data_dtype(dtype)
-    img.header.set_xyzt_units("mm", "sec")
+    img.set_sform(aff, code=2)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # an oblique affine with shear: the qform keeps its rotation part
+        img.set_qform(aff, code=2)
+    img.header.set_xyzt_units("mm", "sec" if arr.ndim == 4 else "unknown")
+    if intent is not None:
+        img.header.set_intent(intent.code, intent.parameters, name=intent.name[:15])
+    if description:
+        img.header["descrip"] = description.encode("ascii", "replace")[:79]
     with atomic_path(path) as tmp:
         nib.save(img, tmp)

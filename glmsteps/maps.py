@@ -12,8 +12,55 @@ import os
 import numpy as np
 import numpy.typing as npt
 
+from . import __version__
 from .errors import DataError
-from .fileio import save_nifti
+from .fileio import MapIntent, save_nifti
+
+#: Rule for values outside the analysed voxels: NaN in every float map (statistical maps and
+#: thresholded maps alike); 0 in integer masks, which cannot hold NaN.
+OUTSIDE_VALUE = float("nan")
+
+
+def statistic_intent(stat: str, dof: float | None = None, dof1: float | None = None) -> MapIntent:
+    """The NIfTI-1 intent of a map by its statistic name.
+
+    Parameters
+    ----------
+    stat : str
+        ``t``, ``f``, ``z``, ``p``, ``effect``, ``variance``, ``p_fwe...`` or
+        another name (no intent).
+    dof : float, optional
+        Degrees of freedom of a t map, denominator dof of an F map (one value
+        for the map: the sidecar has the per-voxel detail).
+    dof1 : float, optional
+        Numerator degrees of freedom of an F map.
+
+    Returns
+    -------
+    MapIntent
+
+    Notes
+    -----
+    Intent codes of the NIfTI-1 standard (nifti1.h): t test (3, p1 = dof),
+    F test (4, p1 = numerator, p2 = denominator dof), z score (5), p value (22),
+    estimate (1001).
+    """
+    if stat == "t" and dof is not None:
+        return MapIntent("t test", (float(dof),), "t")
+    if stat == "f" and dof is not None and dof1 is not None:
+        return MapIntent("f test", (float(dof1), float(dof)), "F")
+    if stat in ("z", "z_thresholded"):
+        return MapIntent("z score", (), "z")
+    if stat == "p" or stat.startswith("p_fwe"):
+        return MapIntent("p value", (), stat)
+    if stat in ("effect", "variance", "mean", "residual_sd", "ar_coef"):
+        return MapIntent("estimate", (), stat)
+    return MapIntent()
+
+
+def map_description(stat: str, contrast: str | None = None, level: str | None = None) -> str:
+    """Short ``descrip`` text of a map, e.g. ``"glmsteps 0.1.0 z subject tap"`` (at most 79 characters)."""
+    return " ".join(part for part in (f"glmsteps {__version__}", stat, level or "", contrast or "") if part)[:79]
 
 
 def unmask(values: npt.ArrayLike, voxel_index: npt.NDArray[np.integer], shape: tuple[int, int, int],
@@ -42,9 +89,14 @@ def unmask(values: npt.ArrayLike, voxel_index: npt.NDArray[np.integer], shape: t
 
 
 def save_map(path: str | os.PathLike[str], values: npt.ArrayLike, voxel_index: npt.NDArray[np.integer],
-             shape: tuple[int, int, int], affine: npt.NDArray[np.floating]) -> None:
-    """Write per-voxel values as a float32 NIfTI map, NaN outside the voxel set (atomic)."""
-    save_nifti(path, unmask(values, voxel_index, shape), affine)
+             shape: tuple[int, int, int], affine: npt.NDArray[np.floating], intent: MapIntent | None = None,
+             description: str = "") -> None:
+    """Write per-voxel values as a float32 NIfTI map, NaN outside the voxel set (atomic).
+
+    ``intent`` and ``description`` go into the header (:func:`statistic_intent`,
+    :func:`map_description`).
+    """
+    save_nifti(path, unmask(values, voxel_index, shape), affine, intent=intent, description=description)
 
 
 def load_map(path: str | os.PathLike[str]) -> tuple[npt.NDArray[np.float32], npt.NDArray[np.float64]]:

@@ -27,6 +27,7 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import json
+import logging
 import math
 import os
 import warnings
@@ -179,33 +180,104 @@ def build_record(step: str, params: Mapping[str, Any],
     return record
 
 
+#: Sidecars held back by :func:`deferred_sidecars` blocks (innermost last).
+_PENDING_SIDECARS: list[dict[Path, dict[str, Any]]] = []
+
+
 def write_sidecar(output: str | os.PathLike[str], record: Mapping[str, Any], **extra: Any) -> Path:
     """Write the sidecar of ``output`` atomically; return its path.
 
-    Write the sidecar before the output itself, so that an output that exists
-    always has its sidecar.
+    Inside a :func:`deferred_sidecars` block (every workflow job runs in one)
+    the sidecar is held back and written only after all the job's outputs, by
+    :func:`write_deferred_sidecars`, so that a killed job never leaves a
+    sidecar describing an output that was not written.
     """
     side = sidecar_path(output)
     data = dict(record)
     data.update(extra)
-    write_json(side, data)
+    if _PENDING_SIDECARS:
+        _PENDING_SIDECARS[-1][side] = data
+    else:
+        write_json(side, data)
     return side
 
 
 @contextlib.contextmanager
+def deferred_sidecars() -> Iterator[dict[Path, dict[str, Any]]]:
+    """Hold back every :func:`write_sidecar` inside the block; yields the pending sidecars."""
+    pending: dict[Path, dict[str, Any]] = {}
+    _PENDING_SIDECARS.append(pending)
+    try:
+        yield pending
+    finally:
+        _PENDING_SIDECARS.remove(pending)
+
+
+@contextlib.contextmanager
 def collect_warnings() -> Iterator[list[str]]:
-    """Record every warning raised inside the block as text (and still show it).
+    """Record every warning raised inside the block as text, logging each as it is raised.
 
     Yields a list that fills with ``"Category: message"`` strings, for the
-    sidecar's ``warnings`` field.
+    sidecar's ``warnings`` field. Each warning is also logged at once (logger
+    ``glmsteps``: the job's log file and stderr), so a warning raised before a
+    job fails is still seen.
     """
     messages: list[str] = []
-    with warnings.catch_warnings(record=True) as caught:
+    logger = logging.getLogger("glmsteps")
+
+    def show(message: Warning | str, category: type[Warning], filename: str, lineno: int,
+             file: Any = None, line: str | None = None) -> None:
+        text = f"{category.__name__}: {message}"
+        messages.append(text)
+        logger.warning(text)
+
+    with warnings.catch_warnings():
         warnings.simplefilter("always")
-        try:
-            yield messages
-        finally:
-            for w in caught:
-                messages.append(f"{w.category.__name__}: {w.message}")
-    for text in messages:
-        print(f"warning: {text}")
+        warnings.showwarning = show
+        yield messages
+
+
+#: Sidecar key holding the sha256 of each output the sidecar describes (by file name).
+OUTPUT_HASHES_KEY = "output_sha256"
+
+
+def write_deferred_sidecars(pending: Mapping[Path, Mapping[str, Any]],
+                            outputs: Sequence[str | os.PathLike[str]]) -> None:
+    """Write held-back sidecars, each with the sha256 of the outputs it describes.
+
+    Parameters
+    ----------
+    pending : mapping of sidecar path to its content
+        From :func:`deferred_sidecars`.
+    outputs : sequence of path-like
+        The finished job's outputs. Each output's sha256 goes into its sidecar
+        under :data:`OUTPUT_HASHES_KEY` (by file name): into the pending
+        content, or, when the sidecar is a JSON output the job wrote itself,
+        into that file. A JSON output that is its own sidecar cannot hold its
+        own hash and is left as it is.
+
+    Notes
+    -----
+    ``glmsteps audit --verify`` compares an output's current bytes with this
+    hash, so an edit to the audited map itself is found (SHA-256, FIPS 180-4).
+    """
+    hashes: dict[Path, dict[str, str]] = {}
+    for output in outputs:
+        path = Path(output)
+        side = sidecar_path(path)
+        if side != path and path.is_file():
+            hashes.setdefault(side, {})[path.name] = hash_file(path)
+    for side, data in pending.items():
+        content = dict(data)
+        if side in hashes:
+            content[OUTPUT_HASHES_KEY] = {**(content.get(OUTPUT_HASHES_KEY) or {}), **hashes.pop(side)}
+        write_json(side, content)
+    for side, found in hashes.items():
+        if not side.is_file():
+            continue
+        content = read_json(side)
+        if isinstance(content, dict):
+            # a JSON output holds its record under "provenance", where read_record finds it
+            holder = content["provenance"] if isinstance(content.get("provenance"), dict) else content
+            holder[OUTPUT_HASHES_KEY] = {**(holder.get(OUTPUT_HASHES_KEY) or {}), **found}
+            write_json(side, content)

@@ -244,9 +244,11 @@ def write_toy_study(dest: str | os.PathLike[str], seed: int = DEFAULT_SEED) -> P
         "DatasetType": "derivative", "License": "CC0",
         "GeneratedBy": [{"Name": "glmsteps toy-study", "Description": "simulated; not real data"}],
     })
+    subject_gains: dict[str, float] = {}
     for _, row in participants.iterrows():
         sub = row["participant_id"].removeprefix("sub-")
         subject_gain = float(np.clip(rng_master.normal(1.0, 0.1), 0.75, 1.25))
+        subject_gains[row["participant_id"]] = subject_gain
         anat = root / f"sub-{sub}" / "anat"
         save_nifti(anat / f"sub-{sub}_space-toy_desc-brain_mask.nii.gz", mask.astype(np.uint8), affine, dtype=np.uint8)
         for run in RUNS:
@@ -263,10 +265,14 @@ def write_toy_study(dest: str | os.PathLike[str], seed: int = DEFAULT_SEED) -> P
     truth = {
         "description": "Planted effects of the invented 'Lighthouse keepers' study. amplitude_percent "
                        "is the beta (percent signal change) of a unit-integral double-gamma regressor; "
-                       "each subject's amplitudes are scaled by a subject gain (mean 1, sd 0.1).",
+                       "each subject's amplitudes are scaled by its amplitude_gain (drawn with mean 1, sd 0.1); "
+                       "the site gain scales the whole signal (baseline and response alike).",
         "seed": seed, "repetition_time_s": REPETITION_TIME_S, "n_volumes": N_VOLUMES,
         "ar1_rho": AR_RHO, "noise_sd_percent": NOISE_SD_PERCENT,
-        "sites": SITES, "blobs": [
+        "sites": SITES,
+        "subjects": [{"participant_id": pid, "site": site, "amplitude_gain": round(subject_gains[pid], 12)}
+                     for pid, site in zip(participants["participant_id"], participants["site"])],
+        "blobs": [
             {"condition": b.condition, "centre_mm": list(b.centre_mm), "radius_mm": b.radius_mm,
              "amplitude_percent": b.amplitude_percent} for b in BLOBS],
     }

@@ -1,5 +1,6 @@
-# Fixed-effects combination of a subject's runs (t contrasts only), computed from the run
-# fits: one job per subject and contrast, whether or not run-level maps are written.
+# Fixed-effects combination of a subject's runs, computed from the run fits: one job per
+# subject and contrast, whether or not run-level maps are written. t contrasts give effect,
+# variance, t, z, p; F contrasts the fixed-effects F over runs (f, z, p).
 rule combine_runs:
     input:
         fit=subject_fits,
@@ -19,3 +20,12 @@ rule combine_runs:
         LOG_DIR + "/sub-{subject}/combined/contrast-{contrast}.log",
     script:
         "../scripts/combine_runs.py"
+
+
+use rule combine_runs as combine_runs_f with:
+    output:
+        f=SUBJECT_DIR + "/contrast-{contrast}/f.nii.gz",
+        z=SUBJECT_DIR + "/contrast-{contrast}/z.nii.gz",
+        p=SUBJECT_DIR + "/contrast-{contrast}/p.nii.gz",
+    wildcard_constraints:
+        contrast=F_CONTRAST,

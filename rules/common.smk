@@ -397,7 +397,7 @@ def run_targets():
 def subject_targets():
     targets = []
     for s in SUBJECTS:
-        for name in T_CONTRASTS:
+        for name in CONTRASTS:
             base = f"{OUT}/sub-{s}/combined/contrast-{name}"
             targets.append(f"{base}/z.nii.gz")
             targets += [f"{base}/threshold-{t}/clusters.tsv" for t in THRESHOLDS["subject"]]
@@ -431,6 +431,8 @@ def indexed_maps():
     for s in SUBJECTS:
         for name in T_CONTRASTS:
             maps += [f"{OUT}/sub-{s}/combined/contrast-{name}/{x}.nii.gz" for x in ("effect", "variance", "t", "z", "p")]
+        for name in F_CONTRASTS:
+            maps += [f"{OUT}/sub-{s}/combined/contrast-{name}/{x}.nii.gz" for x in ("f", "z", "p")]
     for model, spec in GROUP_MODELS.items():
         for name in group_inputs_of(model):
             for gcon in group_contrasts_of(model):

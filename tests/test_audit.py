@@ -79,7 +79,11 @@ def make_chain(base: Path, fit_params: dict[str, Any] | None = None,
         rec = provenance.build_record("combine_runs", COMBINE_PARAMS,
                                       {"effect": [f"{RUN}/contrast-a/effect.nii.gz"],
                                        "variance": [f"{RUN}/contrast-a/variance.nii.gz"]})
-        _write_map(Path(TARGET), rec, "z", 1.4)
+        # as a workflow job writes it (glmsteps.jobs.common.run_script): sidecar after the map,
+        # with the map's own sha256
+        with provenance.deferred_sidecars() as pending:
+            _write_map(Path(TARGET), rec, "z", 1.4)
+            provenance.write_deferred_sidecars(pending, [TARGET])
     return base / TARGET
 
 
@@ -189,7 +193,7 @@ def test_lineage_independent_of_absolute_folder_and_mtimes(tmp_path: Path, capsy
 def test_verify_passes_then_names_an_edited_events_file(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     target = make_chain(tmp_path / "w")
     code, out, _ = run_cli(capsys, "audit", target, "--verify")
-    assert code == 0 and "verify: all 6 file(s) match" in out
+    assert code == 0 and "verify: all 7 file(s) match" in out  # 6 inputs and the audited map itself
     with open(tmp_path / "w" / EVENTS_RAW, "a", encoding="utf-8") as handle:
         handle.write("12.0\t2.0\ta\n")
     code, out, _ = run_cli(capsys, "audit", target, "--verify")
@@ -332,3 +336,79 @@ def test_malformed_record_is_a_provenance_error() -> None:
     with pytest.raises(ProvenanceError, match="'lineage_hash'"):
         audit.build_chain("z.nii.gz", {"step": "fit", "params": {}, "params_hash": "x", "inputs": {}},
                           lambda p: None)
+
+
+def test_verify_notices_an_edit_to_the_audited_map_itself(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """Issue 20.4: the map's own sha256 is recorded when written and checked by --verify."""
+    target = make_chain(tmp_path / "w")
+    side = json.loads(provenance.sidecar_path(target).read_text())
+    # reference: hashlib sha256 of the map's bytes
+    assert side[provenance.OUTPUT_HASHES_KEY] == {"z.nii.gz": _sha256_bytes(target.read_bytes())}
+    code, out, _ = run_cli(capsys, "audit", target, "--verify")
+    assert code == 0 and "all" in out.splitlines()[-1]
+    save_nifti(target, np.full((2, 2, 2), 9.9, dtype=np.float32), np.eye(4))   # the map edited in place
+    code, out, _ = run_cli(capsys, "audit", target, "--verify", "--json")
+    assert code == 1
+    bad = [c for c in json.loads(out)["verify"]["checks"] if c["status"] != "ok"]
+    assert [(Path(c["path"]).name, c["status"], c["found"]) for c in bad] == \
+        [("z.nii.gz", "changed", _sha256_bytes(target.read_bytes()))]
+
+
+def test_verify_of_a_map_without_a_recorded_hash_says_so_and_passes(tmp_path: Path,
+                                                                    capsys: pytest.CaptureFixture[str]) -> None:
+    target = make_chain(tmp_path / "w")
+    side = provenance.sidecar_path(target)
+    data = json.loads(side.read_text())
+    del data[provenance.OUTPUT_HASHES_KEY]          # as written by glmsteps before it recorded them
+    side.write_text(json.dumps(data))
+    code, out, _ = run_cli(capsys, "audit", target, "--verify")
+    assert code == 0
+    assert any(line.startswith("NOTE: ") and "recorded no sha256" in line for line in out.splitlines())
+
+
+def _fan_in_chain(base: Path, fit_params: dict[str, Any], data_folder: str = "data") -> Path:
+    """Three runs fitted with the same settings, combined into one map (records as the jobs write them)."""
+    base.mkdir(parents=True, exist_ok=True)
+    with contextlib.chdir(base):
+        fits = []
+        for run in (1, 2, 3):
+            raw = Path(f"{data_folder}/sub-01_run-{run}_bold.nii")
+            raw.parent.mkdir(parents=True, exist_ok=True)
+            raw.write_bytes(_bold_bytes() + bytes([run]))
+            rec = provenance.build_record("fit", fit_params, {"bold": str(raw)})
+            fit = Path(f"out/run-{run}/fit.json.txt")
+            provenance.write_sidecar(fit, rec)
+            fit.parent.mkdir(parents=True, exist_ok=True)
+            fit.write_text(f"fit {run}\n")
+            fits.append(str(fit))
+        rec = provenance.build_record("combine_runs", COMBINE_PARAMS, {"fit": fits})
+        _write_map(Path(TARGET), rec, "z", 1.0)
+    return base / TARGET
+
+
+def test_short_audit_shows_each_step_once_and_full_audit_each_setting_once(tmp_path, capsys):
+    """Issue 21: a chain with many jobs of one step prints each step's settings once by default."""
+    target = _fan_in_chain(tmp_path / "w", FIT_PARAMS)
+    chain = audit.load_chain(target)
+    short = audit.render_summary(chain)
+    fit_lines = [line for line in short.splitlines() if line.strip().startswith("fit (")]
+    assert fit_lines == [fit_lines[0]] and "3 jobs" in fit_lines[0] and "autocorrelation model: ar1" in fit_lines[0]
+    assert "bold: 3 file(s)" in short and short.count("autocorrelation model") == 1
+    code, out, _ = run_cli(capsys, "audit", target)
+    assert code == 0 and out == short
+    full = audit.render_text(chain)
+    assert full.count("autocorrelation model: ar1") == 1 and full.count("settings: as step [2]") == 2
+    code, out, _ = run_cli(capsys, "audit", target, "--full")
+    assert out == full
+
+
+def test_diff_never_counts_a_path_alone_as_a_difference(tmp_path, capsys):
+    """Issue 21: the same raw bytes under another folder are the same input."""
+    a = _fan_in_chain(tmp_path / "a", FIT_PARAMS, data_folder="data")
+    b = _fan_in_chain(tmp_path / "b", {**FIT_PARAMS, "autocorrelation": "ols"}, data_folder="elsewhere/raw")
+    result = audit.diff_chains(audit.load_chain(a), audit.load_chain(b))
+    assert not result.identical and result.inputs == [] and result.structure == []
+    assert {(d.step, d.key, d.value_a, d.value_b) for d in result.settings} == {("fit", "autocorrelation", "ar1", "ols")}
+    same = _fan_in_chain(tmp_path / "c", FIT_PARAMS, data_folder="moved")
+    code, out, _ = run_cli(capsys, "diff", a, same)
+    assert code == 0 and "identical lineage" in out

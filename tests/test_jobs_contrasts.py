@@ -227,6 +227,52 @@ COMBINE_PARAMS = {"name": "a_vs_b", "definition": {"weights": {"A": 1, "B": -1}}
                   "skip_nonestimable": True}
 
 
+F_PARAMS = {"name": "any_effect", "definition": {"rows": [{"A": 1}, {"B": 1}]}, "tail": None,
+            "skip_nonestimable": True}
+
+
+def test_combine_job_f_contrast_is_the_fixed_effects_f_over_runs(tmp_path):
+    """Issue 14.3: F contrasts have subject-level maps (f, z, p), from the run fits."""
+    from glmsteps.combine import fixed_effects_f
+    from glmsteps.fitstore import read_fit
+
+    fits, sims = [], []
+    for i, seed in enumerate((40, 41, 42), start=1):
+        fit = tmp_path / f"task-gamble_run-{i}" / "fit.h5"
+        fit.parent.mkdir(parents=True)
+        sims.append(_write_fit(fit, seed=seed, signal=0.3))
+        fits.append(str(fit))
+    out = _outputs(tmp_path / "combined", ("f", "z", "p"))
+    combine_job.run({"fit": fits}, out, F_PARAMS, {"subject": "01", "contrast": "any_effect"})
+    f_map = _load(out["f"]).ravel()
+    side = json.loads((tmp_path / "combined" / "f.json").read_text())
+    assert side["kind"] == "F" and side["dof1"] == 2 and side["dof"] == 3 * 44
+    assert side["map"] == {"level": "subject", "subject": "01", "session": "", "task": "gamble", "run": "",
+                           "contrast": "any_effect", "stat": "f"}
+    # reference, by hand for each voxel: the runs' OLS estimates C b_r with covariance
+    # s2_r C (X'X)^-1 C', combined by GLS (Searle 1971 sec. 5.5); F = theta' (sum P_r) theta / 2
+    C = np.array([[1.0, 0, 0, 0], [0, 1.0, 0, 0]])
+    runs = [read_fit(f) for f in fits]
+    union = np.unique(np.concatenate([r.voxel_index for r in runs]))
+    for vox in union[:25]:
+        info, score, dof2 = np.zeros((2, 2)), np.zeros(2), 0.0
+        for r, sim in zip(runs, sims):
+            where = np.flatnonzero(r.voxel_index == vox)
+            if not where.size:
+                continue
+            j = where[0]
+            P = np.linalg.inv(float(r.residual_variance[j]) * C @ np.linalg.inv(sim["X"].T @ sim["X"]) @ C.T)
+            info += P
+            score += P @ (C @ r.beta[:, j].astype(np.float64))
+            dof2 += sim["dof"]
+        theta = np.linalg.solve(info, score)
+        assert f_map[vox] == pytest.approx(theta @ info @ theta / 2, rel=1e-5)
+        # reference: scipy.stats.f upper tail on (2, summed dof)
+        assert _load(out["p"]).ravel()[vox] == pytest.approx(sps.f.sf(f_map[vox], 2, dof2), rel=1e-4)
+    outside = np.setdiff1d(np.arange(f_map.size), union)
+    assert np.isnan(f_map[outside]).all()
+
+
 def _run_maps(tmp_path, seeds, zero_b_runs=()):
     """Fits of a few runs, and their run-level maps from the contrast job (the reference path)."""
     fits, effects, variances = [], [], []
@@ -265,12 +311,44 @@ def test_combine_job_matches_hand_inverse_variance_mean(tmp_path):
     assert [d["path"].endswith("fit.h5") for d in side["inputs"]["fit"]] == [True] * 3
 
 
-def test_combine_job_all_skipped_and_grid_mismatch(tmp_path):
+def test_combine_job_all_skipped_writes_nan_maps_marked_skipped(tmp_path):
+    """Issue 14.5: a contrast estimable in no run of a subject never stops the study."""
     fits, _, _ = _run_maps(tmp_path, seeds=(6, 7), zero_b_runs=(1, 2))
     out = _outputs(tmp_path / "combined", ("effect", "variance", "t", "z", "p"))
-    with pytest.raises(ContrastError) as info:
-        combine_job.run({"fit": fits}, out, COMBINE_PARAMS, {"subject": "01", "contrast": "a_vs_b"})
-    assert "\n" not in str(info.value) and "skipped or excluded" in str(info.value)
+    combine_job.run({"fit": fits}, out, COMBINE_PARAMS, {"subject": "01", "contrast": "a_vs_b"})
+    for key in out:
+        assert np.isnan(_load(out[key])).all()
+        side = json.loads(Path(out[key]).with_suffix("").with_suffix(".json").read_text())
+        assert side["skipped"] is True and "excluded" not in side
+        assert "not estimable" in side["reason"] and "task-gamble_run-2" in side["reason"]
+        assert side["runs_used"] == [] and len(side["runs_left_out"]) == 2
+    from glmsteps.jobs.index import index_rows
+    assert set(index_rows(list(out.values()), tmp_path)["status"]) == {"skipped"}
+
+
+def test_combine_job_every_run_excluded_writes_nan_maps_marked_excluded(tmp_path):
+    """Issue 14.5: a subject whose every run was excluded upstream is recorded, not an error."""
+    fits = []
+    for i in (1, 2):
+        fit = tmp_path / f"task-gamble_run-{i}" / "fit.h5"
+        fit.parent.mkdir(parents=True)
+        _write_fit(fit, seed=30 + i, excluded=True)
+        fits.append(str(fit))
+    for params, keys in ((COMBINE_PARAMS, ("effect", "variance", "t", "z", "p")),
+                         (F_PARAMS, ("f", "z", "p"))):
+        out = _outputs(tmp_path / f"combined-{params['name']}", keys)
+        combine_job.run({"fit": fits}, out, params, {"subject": "01", "contrast": params["name"]})
+        for key in keys:
+            assert np.isnan(_load(out[key])).all()
+            side = json.loads(Path(out[key]).with_suffix("").with_suffix(".json").read_text())
+            assert side["excluded"] is True and side["reason"].startswith("all 2 run(s) excluded")
+        from glmsteps.jobs.index import index_rows
+        assert set(index_rows(list(out.values()), tmp_path)["status"]) == {"excluded"}
+
+
+def test_combine_job_grid_mismatch_and_nonestimable_errors(tmp_path):
+    fits, _, _ = _run_maps(tmp_path, seeds=(6, 7), zero_b_runs=(1, 2))
+    out = _outputs(tmp_path / "combined", ("effect", "variance", "t", "z", "p"))
     # not estimable without skip_nonestimable: the run-level error, naming contrast and run
     with pytest.raises(ContrastError, match="a_vs_b.*task-gamble_run-1"):
         combine_job.run({"fit": fits}, out, {**COMBINE_PARAMS, "skip_nonestimable": False},

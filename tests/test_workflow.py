@@ -169,3 +169,49 @@ def test_group_maps_recover_the_blobs_with_fwe_control(toy_results):
         assert np.nanmin(p_fwe[far]) >= 0.05, blob.condition
         # the permutation p is never below 1 / n_permutations (Nichols & Holmes 2002)
         assert np.nanmin(p_fwe) >= 1.0 / toy_results.config["group_models"]["everyone"]["permutation"]["n_permutations"] - 1e-12
+
+
+def test_planted_amplitudes_are_recovered_in_percent_signal_change_at_every_site(toy_results, toy_data):
+    """truth.json's amplitudes come back, in percent signal change, at each site alike.
+
+    The sites' scanners differ in gain by up to 1.7x (east 1.35 / south 0.80), so in raw units
+    their effects differ by that much; percent scaling must remove it (README, fit.scaling).
+    At each blob centre and for each site, the subjects' combined effects are compared with the
+    planted amplitude x each subject's amplitude_gain, divided by (1 + m/100) where m is the
+    voxel's mean planted response in percent (percent scaling divides by the voxel's temporal
+    mean, which includes that response). The pooled z = sum(effect - truth) / sqrt(sum(variance))
+    over a site's 4 subjects is N(0, 1) if the estimates are unbiased and their variances right;
+    |z| < 3.29 is its two-sided 0.1 % bound (9 checks: family-wise about 1 %). A 10 % error in the
+    scaling of one site moves its z by about 0.1 x amplitude / SE, i.e. 4-10 here, so it fails.
+    """
+    from glmsteps.toystudy import BLOBS, blob_weights, predicted_response, toy_affine
+
+    truth = json.loads((toy_data / "truth.json").read_text())
+    gains = {s["participant_id"].removeprefix("sub-"): s["amplitude_gain"] for s in truth["subjects"]}
+    sites = {s["participant_id"].removeprefix("sub-"): s["site"] for s in truth["subjects"]}
+    assert max(truth["sites"][s]["gain"] for s in truth["sites"]) / \
+        min(truth["sites"][s]["gain"] for s in truth["sites"]) == pytest.approx(1.6875)
+    inverse = np.linalg.inv(toy_affine())
+    weights = {b.condition: blob_weights(b) for b in BLOBS}
+    for blob in truth["blobs"]:
+        ijk = tuple(int(round(v)) for v in (inverse @ np.append(blob["centre_mm"], 1.0))[:3])
+        by_site: dict[str, list[tuple[float, float, float]]] = {}
+        for subject, site in sites.items():
+            base = toy_results.results / f"sub-{subject}" / "combined" / f"contrast-{blob['condition']}"
+            effect = float(np.asarray(nib.load(base / "effect.nii.gz").dataobj)[ijk])
+            variance = float(np.asarray(nib.load(base / "variance.nii.gz").dataobj)[ijk])
+            # mean planted response (percent) at this voxel, averaged over the subject's runs
+            means = []
+            for events_path in sorted(toy_data.glob(f"sub-{subject}/func/*_events.tsv")):
+                events = pd.read_csv(events_path, sep="\t")
+                means.append(sum(b.amplitude_percent * gains[subject] * weights[b.condition][ijk]
+                                 * predicted_response(events, b.condition).mean() for b in BLOBS))
+            expected = blob["amplitude_percent"] * gains[subject] / (1.0 + float(np.mean(means)) / 100.0)
+            by_site.setdefault(site, []).append((effect, variance, expected))
+        assert set(by_site) == set(truth["sites"])
+        for site, rows in by_site.items():
+            e, v, x = (np.array(col) for col in zip(*rows))
+            z = (e - x).sum() / np.sqrt(v.sum())
+            assert abs(z) < 3.29, (blob["condition"], site, e, x, z)
+            # and in plain words: the site's mean effect is within 10 % of the planted amplitude
+            assert abs(e.mean() / x.mean() - 1.0) < 0.10, (blob["condition"], site, e.mean(), x.mean())

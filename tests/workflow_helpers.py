@@ -6,6 +6,8 @@ import os
 import re
 import subprocess
 import sys
+import threading
+import time
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -49,10 +51,46 @@ class Workspace:
         env["PYTHONPATH"] = str(REPO) + os.pathsep + env.get("PYTHONPATH", "")
         cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "Snakefile"), "--directory",
                str(self.workdir), "--configfile", str(config_path), *args]
-        proc = subprocess.run(cmd, capture_output=True, text=True, env=env, timeout=timeout)
+        proc = _run_with_progress(cmd, env, timeout, show="--dry-run" not in args and "-n" not in args)
         if check and proc.returncode != 0:
             raise AssertionError(f"snakemake failed ({proc.returncode}):\n{proc.stdout[-4000:]}\n{proc.stderr[-6000:]}")
         return proc
+
+
+_PROGRESS = re.compile(r"^\d+ of \d+ steps \(\d+%\) done$")
+
+
+def _run_with_progress(cmd: list[str], env: dict[str, str], timeout: float,
+                       show: bool) -> subprocess.CompletedProcess[str]:
+    """Run ``cmd`` capturing its output; with ``show``, echo Snakemake's progress lines to the terminal.
+
+    A whole workflow run takes minutes; its "N of M steps (x%) done" lines go to the real
+    stderr (``sys.__stderr__``, past pytest's capture) so a long test is not silent.
+    """
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    chunks: dict[str, list[str]] = {"out": [], "err": []}
+    started = time.monotonic()
+
+    def pump(stream: Any, key: str) -> None:
+        for line in stream:
+            chunks[key].append(line)
+            if show and _PROGRESS.match(line.strip()) and sys.__stderr__ is not None:
+                sys.__stderr__.write(f"  [snakemake {time.monotonic() - started:6.1f} s] {line.strip()}\n")
+                sys.__stderr__.flush()
+
+    threads = [threading.Thread(target=pump, args=(proc.stdout, "out")),
+               threading.Thread(target=pump, args=(proc.stderr, "err"))]
+    for t in threads:
+        t.start()
+    try:
+        proc.wait(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        raise
+    finally:
+        for t in threads:
+            t.join()
+    return subprocess.CompletedProcess(cmd, proc.returncode, "".join(chunks["out"]), "".join(chunks["err"]))
 
 
 def default_config() -> dict[str, Any]:

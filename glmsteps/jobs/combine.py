@@ -1,4 +1,4 @@
-"""Step ``combine_runs``: fixed-effects combination of one subject's runs for one t contrast.
+"""Step ``combine_runs``: fixed-effects combination of one subject's runs for one contrast.
 
 inputs
     ``fit``: the subject's run fits (``fit.h5``, a list).
@@ -7,17 +7,25 @@ params
 wildcards
     ``subject``, ``contrast``.
 outputs
-    ``effect``, ``variance``, ``t``, ``z``, ``p`` (float32 NIfTI, NaN where no
-    run has data).
+    t contrast: ``effect``, ``variance``, ``t``, ``z``, ``p``; F contrast:
+    ``f``, ``z``, ``p`` (float32 NIfTI, NaN where no run has data).
 
-Each run's contrast effect and variance are computed from its stored fit (the
-same function as the run-level contrast step), so the subject level needs one
-job per contrast, not one per run and contrast: run-level maps are an optional
-product (``contrast_options.run_maps``). Runs excluded upstream, or where the
-contrast is not estimable and ``skip_nonestimable`` is set, are left out.
+Each run's contrast is computed from its stored fit (the same functions as the
+run-level contrast step), so the subject level needs one job per contrast, not
+one per run and contrast: run-level maps are an optional product
+(``contrast_options.run_maps``). A t contrast is combined by inverse-variance
+weighting (:func:`glmsteps.combine.fixed_effects`), an F contrast by the
+fixed-effects Wald F over runs (:func:`glmsteps.combine.fixed_effects_f`).
+Runs excluded upstream, or where the contrast is not estimable and
+``skip_nonestimable`` is set, are left out. When no run is left the maps are
+still written, all NaN, and their sidecars say ``excluded`` (every run excluded)
+or ``skipped`` (the contrast estimable in no kept run) with the reason, so a
+study of hundreds of subjects never stops for one of them; the group step
+leaves such subjects out and says so.
+
 Output sidecars: record, ``map`` (level subject, run and session empty; task
-kept when all runs share it), ``dof`` (sum over the runs used), ``runs_used``,
-``runs_left_out`` (with reasons), ``tail``.
+kept when all runs share it), ``kind``, ``dof`` (sum over the runs used; for F
+also ``dof1``), ``runs_used``, ``runs_left_out`` (with reasons), ``tail``.
 """
 
 from __future__ import annotations
@@ -30,19 +38,26 @@ import numpy as np
 
 from .. import provenance
 from ..bids import parse_run_id
-from ..combine import check_same_grid, fixed_effects
-from ..contrasts import parse_spec
-from ..errors import ConfigError, ContrastError
+from ..combine import check_same_grid, fixed_effects, fixed_effects_f, run_contrast_moments
+from ..contrasts import MAP_KEYS, contrast_matrix, parse_spec
+from ..errors import ConfigError
 from ..fileio import save_nifti
-from ..maps import unmask
+from ..maps import map_description, statistic_intent, unmask
 from .contrast import contrast_of_fit, contrast_settings, map_block
 
 STEP = "combine_runs"
-OUTPUT_KEYS = ("effect", "variance", "t", "z", "p")
 
 
 def _as_list(value: Any) -> list[str]:
     return [str(value)] if isinstance(value, str) else [str(v) for v in value]
+
+
+def _left_out_status(left_out: list[dict[str, str]], n_runs: int) -> dict[str, Any]:
+    """Sidecar fields of a subject whose every run was left out: excluded or skipped, and why."""
+    reasons = "; ".join(f"{r['run']}: {r['reason']}" for r in left_out)
+    if all(r["status"] == "excluded" for r in left_out):
+        return {"excluded": True, "reason": f"all {n_runs} run(s) excluded ({reasons})"}
+    return {"skipped": True, "reason": f"contrast not estimable in any kept run ({reasons})"}
 
 
 def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],
@@ -52,17 +67,17 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
 
     name, definition, tail, skip = contrast_settings(params)
     spec = parse_spec(name, definition, tail)
-    if spec.kind != "t":
-        raise ConfigError(f"contrast {name!r}: only t contrasts are combined over runs; "
-                          "F contrasts stay at run level")
-    missing = sorted(set(OUTPUT_KEYS) - set(outputs))
+    keys = MAP_KEYS[spec.kind]
+    missing = sorted(set(keys) - set(outputs))
     if missing:
-        raise ConfigError(f"{STEP}: outputs lack {missing}; declare effect, variance, t, z, p")
+        raise ConfigError(f"{STEP}: a {spec.kind} contrast writes {list(keys)}; the rule's outputs lack {missing}")
     fits = _as_list(inputs["fit"])
     if not fits:
         raise ConfigError(f"contrast {name!r}: no run fits given for sub-{wildcards.get('subject')}")
     subject = str(wildcards.get("subject", ""))
-    used, left_out, tasks = [], [], set()
+    used: list[dict[str, Any]] = []
+    left_out: list[dict[str, str]] = []
+    tasks: set[str] = set()
     shapes, affines, labels = [], [], []
     with provenance.collect_warnings() as seen:
         for path in fits:
@@ -74,25 +89,58 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
             affines.append(np.asarray(fit.affine))
             labels.append(f"{run_id} ({path})")
             if extra.get("excluded") or extra.get("skipped"):
-                left_out.append({"run": run_id, "reason": extra.get("reason", "")})
+                left_out.append({"run": run_id, "status": "excluded" if extra.get("excluded") else "skipped",
+                                 "reason": extra.get("reason", "")})
                 continue
-            used.append((run_id, unmask(maps["effect"], fit.voxel_index, tuple(fit.shape)).ravel(),
-                         unmask(maps["variance"], fit.voxel_index, tuple(fit.shape)).ravel(), float(extra["dof"])))
+            shape = tuple(fit.shape)
+            entry: dict[str, Any] = {"run": run_id, "dof": float(extra["dof"])}
+            if spec.kind == "t":
+                entry["effect"] = unmask(maps["effect"], fit.voxel_index, shape).ravel()
+                entry["variance"] = unmask(maps["variance"], fit.voxel_index, shape).ravel()
+            else:
+                C = contrast_matrix(spec, list(fit.names), list(fit.conditions), list(fit.basis))
+                entry["index"] = np.asarray(fit.voxel_index, dtype=np.int64)
+                entry["moments"] = run_contrast_moments(C, fit.beta, fit.residual_variance, fit.bin,
+                                                        fit.bin_covariance)
+            used.append(entry)
             tasks.add(key.task)
         check_same_grid(shapes, affines, labels)
+        n_grid = int(np.prod(shapes[0]))
+        status: dict[str, Any] = {}
         if not used:
-            raise ContrastError(f"contrast {name!r} for sub-{subject}: every run was skipped or excluded "
-                                f"({', '.join(r['run'] + ': ' + r['reason'] for r in left_out)}); "
-                                "remove the contrast for this subject or fix its runs")
-        result = fixed_effects(np.vstack([u[1] for u in used]).astype(np.float64),
-                               np.vstack([u[2] for u in used]).astype(np.float64),
-                               np.array([u[3] for u in used]), spec.tail)
+            status = _left_out_status(left_out, len(fits))
+            values = {k: np.full(n_grid, np.nan) for k in keys}
+        elif spec.kind == "t":
+            result = fixed_effects(np.vstack([u["effect"] for u in used]), np.vstack([u["variance"] for u in used]),
+                                   np.array([u["dof"] for u in used]), spec.tail)
+            values = {"effect": result.effect, "variance": result.variance, "t": result.t, "z": result.z,
+                      "p": result.p}
+        else:
+            union = np.unique(np.concatenate([u["index"] for u in used]))
+            fres = fixed_effects_f([_on_voxels(u["moments"].effect.T, u["index"], union).T for u in used],
+                                   [_on_voxels(u["moments"].precision, u["index"], union) for u in used],
+                                   [u["dof"] for u in used])
+            values = {k: np.full(n_grid, np.nan) for k in keys}
+            for k, v in (("f", fres.f), ("z", fres.z), ("p", fres.p)):
+                values[k][union] = v
+            finite = fres.dof1[np.isfinite(fres.dof1)]
+            status["dof1"] = float(finite.max()) if finite.size else None
     record = provenance.build_record(STEP, params, {"fit": fits}, warnings_seen=seen)
-    extra_out = {"tail": spec.tail, "dof": float(sum(u[3] for u in used)), "runs_used": [u[0] for u in used],
-                 "runs_left_out": left_out}
+    extra_out = {"kind": spec.kind, "tail": spec.tail if spec.kind == "t" else None,
+                 "dof": float(sum(u["dof"] for u in used)) if used else None,
+                 "runs_used": [u["run"] for u in used],
+                 "runs_left_out": [{"run": r["run"], "reason": r["reason"]} for r in left_out], **status}
     task = tasks.pop() if len(tasks) == 1 else ""
-    maps_out = {"effect": result.effect, "variance": result.variance, "t": result.t, "z": result.z, "p": result.p}
-    for stat in OUTPUT_KEYS:
+    for stat in keys:
         block = map_block("subject", subject, "", task, "", name, stat)
         provenance.write_sidecar(outputs[stat], record, map=block, **extra_out)
-        save_nifti(outputs[stat], maps_out[stat].reshape(shapes[0]), affines[0])
+        save_nifti(outputs[stat], values[stat].reshape(shapes[0]), affines[0],
+                   intent=statistic_intent(stat, extra_out["dof"], extra_out.get("dof1")),
+                   description=map_description(stat, name, "subject"))
+
+
+def _on_voxels(values: np.ndarray, index: np.ndarray, union: np.ndarray) -> np.ndarray:
+    """Per-voxel ``values`` (first axis along ``index``) placed on the ``union`` voxels, NaN elsewhere."""
+    out = np.full((union.size, *values.shape[1:]), np.nan)
+    out[np.searchsorted(union, index)] = values
+    return out

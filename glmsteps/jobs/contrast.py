@@ -29,7 +29,7 @@ from .. import provenance
 from ..bids import parse_run_id
 from ..contrasts import MAP_KEYS, evaluate_contrast, contrast_matrix, parse_spec
 from ..errors import ConfigError, ContrastError
-from ..maps import save_map
+from ..maps import map_description, save_map, statistic_intent
 
 STEP = "contrast"
 
@@ -130,7 +130,9 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     for stat in MAP_KEYS[spec.kind]:
         block = map_block("run", key.subject, key.session, key.task, key.run, name, stat)
         provenance.write_sidecar(outputs[stat], record, map=block, **extra)
-        save_map(outputs[stat], maps[stat], fit.voxel_index, tuple(fit.shape), fit.affine)
+        save_map(outputs[stat], maps[stat], fit.voxel_index, tuple(fit.shape), fit.affine,
+                 intent=statistic_intent(stat, extra.get("dof"), extra.get("dof1")),
+                 description=map_description(stat, name, "run"))
 
 
 def _weights(C: np.ndarray, names: list[str]) -> list[dict[str, float]]:
