@@ -36,8 +36,14 @@ def fake_toystudy(monkeypatch: pytest.MonkeyPatch) -> list[tuple[tuple[Any, ...]
 
 
 def test_version_matches_the_package_metadata(capsys: pytest.CaptureFixture[str]) -> None:
-    # reference: the version declared in pyproject.toml (read with tomllib)
-    declared = tomllib.loads((REPO / "pyproject.toml").read_text())["project"]["version"]
+    # reference: the installed distribution's metadata (importlib.metadata), which setuptools
+    # takes from glmsteps.__version__ as pyproject.toml declares (dynamic version, one place)
+    from importlib.metadata import version
+
+    project = tomllib.loads((REPO / "pyproject.toml").read_text())
+    assert project["project"]["dynamic"] == ["version"]
+    assert project["tool"]["setuptools"]["dynamic"]["version"] == {"attr": "glmsteps.__version__"}
+    declared = version("glmsteps")
     with pytest.raises(SystemExit) as stop:
         cli.main(["--version"])
     assert stop.value.code == 0

@@ -9,6 +9,7 @@ import scipy.stats
 from numpy.testing import assert_allclose
 
 from glmsteps import estimation as est
+from glmsteps import fitting
 from glmsteps.jobs import fit as fit_job
 from glmsteps.report import qc
 
@@ -23,14 +24,19 @@ def _design(n: int) -> tuple[np.ndarray, list[str]]:
     return X, ["interest", "drift", "drift", "intercept"]
 
 
-def _fit(Y: np.ndarray, X: np.ndarray, roles: list[str], **params) -> tuple[fit_job.VoxelFit, np.ndarray, np.ndarray]:
+def _fit(Y: np.ndarray, X: np.ndarray, roles: list[str], **params) -> tuple[fitting.VoxelFit, np.ndarray, np.ndarray]:
     """Fit Y as the fit job does (its scale factors and its chunked voxel loop)."""
     settings = fit_job.check_params({**FIT_PARAMS, **params})
     design = est.prepare_design(X, roles)
     mean = Y.mean(axis=0)
     factors = est.compute_scale_factors(mean, settings.scaling, settings.grand_mean_value)
     columns = np.arange(Y.shape[1])
-    vf = fit_job.fit_voxels(Y.astype(np.float32), columns, factors, design, settings, 1, 64)
+    order = 1 if settings.autocorrelation != "arp" else est.check_ar_order(design, settings.ar_order)
+    noise = fitting.NoiseSettings(model=settings.autocorrelation, order=order,
+                                  smoothing_fwhm_mm=0.0, bin_width=settings.ar_bin_width)
+    grid = fitting.VoxelGrid(shape=(Y.shape[1], 1, 1), flat_index=columns.astype(np.int64),
+                             voxel_size_mm=np.ones(3))
+    vf = fitting.fit_voxels(Y.astype(np.float32), columns, factors, design, noise, 64, grid)
     return vf, mean, factors
 
 
