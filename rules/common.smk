@@ -281,8 +281,7 @@ def fit_params():
     f = config["fit"]
     return {"scaling": f["scaling"], "grand_mean_value": f["grand_mean_value"], "autocorrelation": f["autocorrelation"],
             "ar_order": f["ar_order"], "ar_smoothing_fwhm_mm": f["ar_smoothing_fwhm_mm"],
-            "ar_bin_width": f["ar_bin_width"], "non_finite_voxels": f["non_finite_voxels"],
-            "repetition_time_s": config["acquisition"]["repetition_time_s"]}
+            "ar_bin_width": f["ar_bin_width"], "non_finite_voxels": f["non_finite_voxels"]}
 
 
 def _contrast_params(name):

@@ -65,7 +65,7 @@ def make_run(root: Path, *, bold_shape: tuple | None = None, tr_s: float = TR_S,
     pd.DataFrame(X, columns=names).to_csv(root / "design.tsv", sep="\t", index=False)
     (root / "design.json").write_text(json.dumps({
         "names": names, "roles": roles, "conditions": ["go", "", "", ""], "basis": ["main", "", "", ""],
-        "first_volume": FIRST, "n_volumes": n_vol, "excluded": excluded}))
+        "first_volume": FIRST, "n_volumes": n_vol, "excluded": excluded, "repetition_time_s": TR_S}))
     inputs = {"bold": str(root / "bold.nii.gz"), "mask": str(root / "mask.nii.gz"),
               "design": str(root / "design.tsv"), "design_summary": str(root / "design.json")}
     if tissue is not None:
@@ -80,7 +80,7 @@ def outputs_in(folder: Path) -> dict[str, str]:
 
 
 PARAMS = {"scaling": "percent", "grand_mean_value": 100.0, "autocorrelation": "ar1", "ar_order": 1,
-          "ar_smoothing_fwhm_mm": 6.0, "ar_bin_width": 0.01, "non_finite_voxels": "drop", "repetition_time_s": TR_S}
+          "ar_smoothing_fwhm_mm": 6.0, "ar_bin_width": 0.01, "non_finite_voxels": "drop"}
 WILDCARDS = {"subject": "01", "run_id": "task-go_run-1"}
 
 
@@ -131,7 +131,7 @@ def test_job_end_to_end(tmp_path: Path) -> None:
 def test_default_noise_model_is_the_gls_of_each_bins_ar_model(tmp_path: Path) -> None:
     inputs = make_run(tmp_path, rho=0.5)
     out = tmp_path / "out"
-    job.run(inputs, outputs_in(out), {"repetition_time_s": TR_S, "non_finite_voxels": "drop"}, WILDCARDS)
+    job.run(inputs, outputs_in(out), {"non_finite_voxels": "drop"}, WILDCARDS)
     fit = read_fit(out / "fit.h5")
     side = json.loads((out / "fit.json").read_text())
     # 60 kept volumes, rank 4: 56 residual dof fit 5 AR coefficients (10 dof each), not the default 8
@@ -299,12 +299,11 @@ def test_excluded_run(tmp_path: Path) -> None:
 @pytest.mark.parametrize("case, pattern", [
     ("3d", r"must be 4D .* found shape \(6, 7, 5\)"),
     ("volumes", r"61 volumes but the design summary .* says 62"),
-    ("tr", r"header TR .* 2.5 s differs from the configured repetition_time_s 2 s"),
     ("grid", r"mask grid \(6, 7, 4\) differs from BOLD grid \(6, 7, 5\)"),
     ("empty", r"mask is empty"),
 ])
 def test_bad_inputs_fail_up_front(tmp_path: Path, case: str, pattern: str) -> None:
-    kwargs = {"3d": {"bold_shape": SHAPE}, "volumes": {"bold_shape": SHAPE + (N_VOL - 1,)}, "tr": {"tr_s": 2.5},
+    kwargs = {"3d": {"bold_shape": SHAPE}, "volumes": {"bold_shape": SHAPE + (N_VOL - 1,)},
               "grid": {"mask_shape": (6, 7, 4)}, "empty": {"mask_fill": False}}[case]
     inputs = make_run(tmp_path, **kwargs)
     out = tmp_path / "out"
@@ -312,6 +311,20 @@ def test_bad_inputs_fail_up_front(tmp_path: Path, case: str, pattern: str) -> No
         job.run(inputs, outputs_in(out), PARAMS, WILDCARDS)
     message = str(info.value)
     assert "\n" not in message
-    named = {"3d": "bold", "volumes": "bold", "tr": "bold", "grid": "mask", "empty": "mask"}[case]
+    named = {"3d": "bold", "volumes": "bold", "grid": "mask", "empty": "mask"}[case]
     assert inputs[named] in message
     assert not out.exists()
+
+
+def test_the_fit_keeps_the_runs_own_tr_from_the_design_summary(tmp_path: Path) -> None:
+    """Issue 14.7: one TR rule (glmsteps.acquisition, applied by validate_events); the fit stores that TR."""
+    inputs = make_run(tmp_path)
+    summary = json.loads(Path(inputs["design_summary"]).read_text())
+    summary["repetition_time_s"] = 0.8
+    Path(inputs["design_summary"]).write_text(json.dumps(summary))
+    job.run(inputs, outputs_in(tmp_path / "out"), PARAMS, WILDCARDS)
+    assert read_fit(tmp_path / "out" / "fit.h5").attrs["repetition_time_s"] == pytest.approx(0.8)
+    del summary["repetition_time_s"]
+    Path(inputs["design_summary"]).write_text(json.dumps(summary))
+    with pytest.raises(DataError, match="repetition_time_s"):
+        job.run(inputs, outputs_in(tmp_path / "again"), PARAMS, WILDCARDS)

@@ -245,7 +245,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     write_json(outputs["summary"], summary)
     for out in (outputs["design"], outputs["figure"]):
         if provenance.sidecar_path(out).resolve() != Path(outputs["summary"]).resolve():
-            write_json(provenance.sidecar_path(out), summary)
+            provenance.write_sidecar(out, summary)
     provenance.write_sidecar(outputs["correlation_figure"], record, excluded=excluded,
                              names=list(design.names), content="regressor correlation matrix of the design")
     plot_correlation_matrix(design.names, corr, outputs["correlation_figure"], title=f"correlations {title}")

@@ -10,7 +10,8 @@ Params
     ``scaling`` (percent | grand_mean | none), ``grand_mean_value``,
     ``autocorrelation`` (ols | ar1 | arp), ``ar_order`` (1..12),
     ``ar_smoothing_fwhm_mm`` (>= 0), ``ar_bin_width``, ``non_finite_voxels``
-    (error | drop), ``repetition_time_s``. Missing keys take the defaults of
+    (error | drop); the run's TR is read from the design summary (``repetition_time_s``, set by the TR rule of
+    ``glmsteps.acquisition``). Missing keys take the defaults of
     ``config/schema.yaml`` (``DEFAULTS``).
 Outputs (named)
     ``fit`` (fit.h5, sidecar fit.json), ``mean``, ``residual_sd``, ``ar_coef``
@@ -44,14 +45,14 @@ from ..errors import ConfigError, DataError, DesignError, GlmstepsWarning
 from ..fileio import read_json, read_numeric_tsv
 from ..fitstore import StoredFit, write_fit
 from ..fitting import NoiseSettings, VoxelFit, VoxelGrid, fit_voxels
-from ..maps import save_map
-from ..volumes import (AFFINE_TOLERANCE_MM, check_grid, check_repetition_time, read_bold_header, read_mask,
+from ..maps import map_description, save_map, statistic_intent
+from ..volumes import (AFFINE_TOLERANCE_MM, check_grid, read_bold_header, read_mask,
                        stream_masked)
 
 STEP = "fit"
 #: Default number of voxels per chunk (override with the GLMSTEPS_CHUNK_VOXELS environment variable).
 DEFAULT_CHUNK_VOXELS = 4096
-_SUMMARY_KEYS = ("names", "roles", "conditions", "basis", "first_volume", "n_volumes", "excluded")
+_SUMMARY_KEYS = ("names", "roles", "conditions", "basis", "first_volume", "n_volumes", "excluded", "repetition_time_s")
 #: Defaults of the step's params: those of the ``fit`` section of config/schema.yaml (``tests/test_jobs_fit.py``).
 DEFAULTS: dict[str, Any] = {"scaling": "percent", "grand_mean_value": 100.0, "autocorrelation": "arp", "ar_order": 8,
                             "ar_smoothing_fwhm_mm": 5.0, "ar_bin_width": 0.01, "non_finite_voxels": "error"}
@@ -71,7 +72,6 @@ class FitSettings:
     ar_smoothing_fwhm_mm: float
     ar_bin_width: float
     non_finite_voxels: NonFinitePolicy
-    repetition_time_s: float
 
 
 def check_params(params: Mapping[str, Any]) -> FitSettings:
@@ -96,9 +96,6 @@ def check_params(params: Mapping[str, Any]) -> FitSettings:
         order = int(p["ar_order"])
         fwhm = float(p["ar_smoothing_fwhm_mm"])
         width = float(p["ar_bin_width"])
-        tr = float(p["repetition_time_s"])
-    except KeyError as exc:
-        raise ConfigError("config repetition_time_s: missing; set the TR of the runs in seconds") from exc
     except (TypeError, ValueError) as exc:
         raise ConfigError(f"config fit: a numeric setting is not a number ({exc}); fix the value") from exc
     if not (gm > 0 and np.isfinite(gm)):
@@ -109,11 +106,9 @@ def check_params(params: Mapping[str, Any]) -> FitSettings:
         raise ConfigError(f"config fit.ar_smoothing_fwhm_mm: expected a number >= 0 (mm), found {fwhm}")
     if not 0 < width <= 0.1:
         raise ConfigError(f"config fit.ar_bin_width: expected a number in (0, 0.1], found {width}")
-    if not (tr > 0 and np.isfinite(tr)):
-        raise ConfigError(f"config repetition_time_s: expected a positive number of seconds, found {tr}")
     return FitSettings(scaling=scaling, grand_mean_value=gm, autocorrelation=noise,
                        ar_order=order if noise == "arp" else 1, ar_smoothing_fwhm_mm=fwhm, ar_bin_width=width,
-                       non_finite_voxels=policy, repetition_time_s=tr)
+                       non_finite_voxels=policy)
 
 
 def chunk_voxels(threads: int = 1) -> int:
@@ -145,6 +140,7 @@ class DesignInput:
     first_volume: int
     n_volumes: int
     excluded: bool
+    repetition_time_s: float
 
 
 def read_design(design_path: str, summary_path: str) -> DesignInput:
@@ -189,8 +185,12 @@ def read_design(design_path: str, summary_path: str) -> DesignInput:
     if not excluded and X.shape[0] != n_vol - first:
         raise DataError(f"{design_path}: {X.shape[0]} rows but the summary says {n_vol} volumes from volume "
                         f"{first} ({n_vol - first} kept); rerun build_design")
+    tr = summary["repetition_time_s"]
+    if isinstance(tr, bool) or not isinstance(tr, (int, float)) or not tr > 0:
+        raise DataError(f"{summary_path}: repetition_time_s is {tr!r}, expected a positive number of seconds; "
+                        "rerun build_design")
     return DesignInput(X=X, names=names, roles=roles, conditions=conditions, basis=basis, first_volume=first,
-                       n_volumes=n_vol, excluded=excluded)
+                       n_volumes=n_vol, excluded=excluded, repetition_time_s=float(tr))
 
 
 # ---------------------------------------------------------------------------
@@ -326,7 +326,6 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
                 raise DataError(f"{bold_path}: {bold.shape[3]} volumes but the design summary "
                                 f"{in_paths['design_summary']} says {design_in.n_volumes}; "
                                 "check that the events, confounds and BOLD belong to the same run")
-            check_repetition_time(bold, settings.repetition_time_s)
             try:
                 design = est.prepare_design(design_in.X, design_in.roles)
             except DesignError as exc:
@@ -355,7 +354,7 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
     timing["total_before_write"] = round(t_fit_end - t_start, 3)
     record = build_record_precomputed(params, in_paths, {"bold": sha} if sha else {}, list(seen), **extra)
     fit.attrs.update({"autocorrelation": settings.autocorrelation, "scaling": settings.scaling,
-                      "repetition_time_s": settings.repetition_time_s})
+                      "repetition_time_s": design_in.repetition_time_s})
     # --- write: sidecar first, then the fit, then the QC maps ----------------------------------------
     provenance.write_sidecar(outputs["fit"], record, timing_s=timing)
     write_fit(outputs["fit"], fit, record)
@@ -363,7 +362,8 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
     for name in ("mean", "residual_sd", "ar_coef"):
         values, index = qc[name]
         provenance.write_sidecar(outputs[name], record, map=_map_block(wildcards, name))
-        save_map(outputs[name], values, index, shape3, bold.affine)
+        save_map(outputs[name], values, index, shape3, bold.affine, intent=statistic_intent(name),
+                 description=map_description(name, None, "run"))
     logger.info("fit written to %s in %.2f s", outputs["fit"], time.perf_counter() - t_start)
 
 

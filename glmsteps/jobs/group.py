@@ -35,7 +35,7 @@ import pandas as pd
 from ..errors import GroupError
 from ..fileio import write_json
 from ..groupdata import fit_group_chunks, fit_summary, group_pz, group_summary, load_group_data, map_block
-from ..maps import save_map
+from ..maps import map_description, save_map, statistic_intent
 from ..plots.sites import plot_site_effects
 from ..provenance import build_record, collect_warnings, write_sidecar
 
@@ -69,7 +69,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
                         "excluded_subjects": data.excluded}
     write_json(outputs["site_qc"], {"provenance": record, "group": summary, "summary": subjects_summary,
                                     "sites": data.site_qc})
-    write_sidecar(outputs["site_figure"], dict(record, group=summary))
+    # the figure's sidecar is site_qc.json itself (same stem), written above: no second record over it
     per_subject = pd.DataFrame(data.site_qc["subjects"])
     columns = ["mean_effect"] + (["mean_effect_harmonised"] if data.harmonised else [])
     titles = ["as entered"] + (["after site harmonisation"] if data.harmonised else [])
@@ -80,4 +80,6 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     for stat in ("effect", "variance", "t", "z", "p"):
         write_sidecar(outputs[stat], record, map=map_block(data, wildcards, stat), group=summary, kind="t",
                       tail=data.settings["tail"])
-        save_map(outputs[stat], values[stat], data.voxel_index, data.shape, data.affine)
+        save_map(outputs[stat], values[stat], data.voxel_index, data.shape, data.affine,
+                 intent=statistic_intent(stat, summary.get("dof_min")),
+                 description=map_description(stat, map_block(data, wildcards, stat)["contrast"], "group"))

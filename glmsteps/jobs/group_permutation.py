@@ -45,7 +45,7 @@ from ..clusters import DEFAULT_SUBPEAK_SPACING_MM, DEFAULT_SUBPEAKS, round_clust
 from ..errors import GlmstepsWarning, GroupError
 from ..fileio import write_tsv
 from ..groupdata import group_summary, load_group_data, map_block
-from ..maps import save_map
+from ..maps import map_description, save_map, statistic_intent
 from ..provenance import build_record, collect_warnings, write_sidecar
 
 LOGGER = logging.getLogger("glmsteps")
@@ -169,4 +169,5 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
         extra = {"note": note} if note else {}
         write_sidecar(outputs[stat], record, map=map_block(data, wildcards, stat), group=summary,
                       permutation=perm_block, **extra)
-        save_map(outputs[stat], values, voxel_index, data.shape, data.affine)
+        save_map(outputs[stat], values, voxel_index, data.shape, data.affine, intent=statistic_intent(stat),
+                 description=map_description(stat, map_block(data, wildcards, stat)["contrast"], "group"))

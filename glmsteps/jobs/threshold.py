@@ -8,7 +8,7 @@ params
 wildcards
     ``threshold`` (and those of the maps).
 outputs
-    ``thresholded`` (z where significant, 0 elsewhere and outside the map),
+    ``thresholded`` (z where significant, 0 where tested but not significant, NaN outside the map),
     ``mask`` (uint8 0/1), ``clusters`` (TSV, name ending in ``clusters.tsv``;
     header only when nothing survives), ``figure`` (PNG slices through the
     largest cluster's peak).
@@ -38,6 +38,7 @@ from ..clusters import cluster_table, round_cluster_table
 from ..combine import check_same_grid
 from ..errors import ConfigError
 from ..fileio import read_json, save_nifti, write_tsv
+from ..maps import OUTSIDE_VALUE, map_description, statistic_intent
 from ..maps import load_map
 from ..plots.slices import plot_orthogonal_slices
 from ..plots.style import save_figure
@@ -96,7 +97,9 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
         result = threshold_map(z, p_test, setting)
         zooms = np.sqrt((affine[:3, :3] ** 2).sum(axis=0))
         table = cluster_table(z, result.labels, affine, setting.subpeaks, setting.subpeak_spacing_mm)
-        thresholded = np.where(result.mask, np.nan_to_num(z.astype(np.float64), nan=0.0), 0.0)
+        # one rule for every float map (glmsteps.maps.OUTSIDE_VALUE): NaN where the map has no value;
+        # 0 where it was tested but did not survive
+        thresholded = np.where(np.isfinite(z), np.where(result.mask, z.astype(np.float64), 0.0), OUTSIDE_VALUE)
         if len(table):
             centre = table.loc[0, ["peak_i", "peak_j", "peak_k"]].to_numpy(dtype=int)
         else:
@@ -114,7 +117,8 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
              "p_cutoff": result.p_cutoff, "p_source": p_source, "n_clusters": result.n_clusters, "n_voxels": int(result.mask.sum()),
              "note": result.note, "voxel_size_mm": [float(v) for v in zooms]}
     provenance.write_sidecar(outputs["thresholded"], record, map={**block, "stat": "z_thresholded"}, **extra)
-    save_nifti(outputs["thresholded"], thresholded, affine)
+    save_nifti(outputs["thresholded"], thresholded, affine, intent=statistic_intent("z_thresholded"),
+               description=map_description("z_thresholded", block.get("contrast"), block.get("level")))
     provenance.write_sidecar(outputs["mask"], record, map={**block, "stat": "mask"}, **extra)
     save_nifti(outputs["mask"], result.mask.astype(np.uint8), affine, dtype=np.uint8)
     provenance.write_sidecar(outputs["clusters"], record, **extra)
