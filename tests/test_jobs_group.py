@@ -436,3 +436,18 @@ def test_group_fit_does_not_depend_on_the_chunk_size(tmp_path: Path) -> None:
         # equal to rounding (vectorised sums run in another order) and to REML's tolerance (1e-10)
         for key in ("effect", "variance", "t", "dof", "between_variance"):
             np.testing.assert_allclose(getattr(parts, key), getattr(whole, key), rtol=1e-9, atol=1e-12)
+
+
+def test_site_qc_keeps_its_sites_when_run_as_a_workflow_job(tmp_path: Path) -> None:
+    """site_qc.png's sidecar name is site_qc.json itself: the site numbers must survive the job's sidecars."""
+    from types import SimpleNamespace
+
+    from glmsteps.jobs.common import run_script
+
+    inputs = make_study(tmp_path)
+    out = outputs_in(tmp_path / "g")
+    run_script(group_job.run, SimpleNamespace(input=inputs, output=out, params=model(mask_fraction=0.9),
+                                              wildcards=WILDCARDS, log=[], threads=1))
+    qc = json.loads(Path(out["site_qc"]).read_text())
+    assert [r["n_subjects"] for r in qc["sites"]["as_entered"]] == [4, 3, 4]
+    assert "site_qc.png" in qc["provenance"]["output_sha256"]
