@@ -109,7 +109,11 @@ def noise_settings(model: str, design: est.DesignFactors, fwhm_mm: float | None 
                    order: int | None = None) -> fitting.NoiseSettings:
     """The fit step's settings for a model (its defaults: ``glmsteps.jobs.fit.DEFAULTS``)."""
     order = est.check_ar_order(design, order or DEFAULTS["ar_order"]) if model == "arp" else 1
-    fwhm = DEFAULTS["ar_smoothing_fwhm_mm"] if fwhm_mm is None else fwhm_mm
+    fwhm = fwhm_mm
+    if fwhm is None:
+        fwhm = DEFAULTS["ar_smoothing_fwhm_mm"]
+    if fwhm is None:
+        fwhm = est.default_smoothing_fwhm_mm(np.full(3, VOXEL_MM))   # the fit step's rule
     return fitting.NoiseSettings(model=model, order=order, smoothing_fwhm_mm=fwhm, bin_width=DEFAULTS["ar_bin_width"])
 
 

@@ -328,3 +328,14 @@ def test_the_fit_keeps_the_runs_own_tr_from_the_design_summary(tmp_path: Path) -
     Path(inputs["design_summary"]).write_text(json.dumps(summary))
     with pytest.raises(DataError, match="repetition_time_s"):
         job.run(inputs, outputs_in(tmp_path / "again"), PARAMS, WILDCARDS)
+
+
+def test_default_ar_smoothing_is_twice_the_voxel_size(tmp_path: Path) -> None:
+    """fit.ar_smoothing_fwhm_mm: null (the schema's default) = 2 x the geometric mean voxel side."""
+    inputs = make_run(tmp_path)              # 3 mm voxels (the test grid's affine)
+    params = {k: v for k, v in PARAMS.items() if k != "ar_smoothing_fwhm_mm"}
+    job.run(inputs, outputs_in(tmp_path / "out"), params, WILDCARDS)
+    side = json.loads((tmp_path / "out" / "fit.json").read_text())
+    assert side["ar_smoothing_fwhm_mm_used"] == pytest.approx(6.0)
+    # reference: 2 x (2 * 3 * 4.5) ** (1/3) mm for an anisotropic 2 x 3 x 4.5 mm voxel, by hand
+    assert est.default_smoothing_fwhm_mm([2.0, 3.0, 4.5]) == pytest.approx(2 * 27.0 ** (1 / 3))

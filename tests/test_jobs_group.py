@@ -446,6 +446,7 @@ def test_site_qc_keeps_its_sites_when_run_as_a_workflow_job(tmp_path: Path) -> N
 
     inputs = make_study(tmp_path)
     out = outputs_in(tmp_path / "g")
+    out["site_figure"] = str(tmp_path / "g" / "site_qc.png")       # the workflow's names (rules/group.smk)
     run_script(group_job.run, SimpleNamespace(input=inputs, output=out, params=model(mask_fraction=0.9),
                                               wildcards=WILDCARDS, log=[], threads=1))
     qc = json.loads(Path(out["site_qc"]).read_text())

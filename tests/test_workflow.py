@@ -35,7 +35,17 @@ def test_planted_blobs_are_recovered_at_run_level(toy_results):
 
 
 def test_null_voxels_have_standard_normal_z(toy_results):
-    """Far from every blob, run-level z is N(0, 1): mean within 0.1, SD within 0.15 of 1 (issue 2)."""
+    """Far from every blob, run-level z is N(0, 1), within the sampling error of the pooled voxels.
+
+    About 73,000 null z values per contrast (24 runs x ~3,000 voxels, independent noise across
+    voxels): the SE of their mean is 1/sqrt(N) ~ 0.0037 and of their SD 1/sqrt(2N) ~ 0.0026, so
+    a 4-SE bound (mean within 0.015, SD within 0.011 of 1) catches a 2 % miscalibration of the
+    variance; the count beyond |z| = 3.29 (p < 0.001) must lie in its binomial 99.9 % interval
+    (reference: scipy.stats.binom), i.e. below about 1.4x nominal. With the AR smoothing at 5 mm on
+    these 4 mm voxels the SD was 1.020 and the count 1.8x nominal, which these bounds reject.
+    """
+    from scipy import stats as sps
+
     xyz = world_grid()
     far = brain_mask().copy()
     for blob in BLOBS:
@@ -44,8 +54,12 @@ def test_null_voxels_have_standard_normal_z(toy_results):
         values = np.concatenate([_z(toy_results, str(r.relative_to(toy_results.results)), contrast)[far]
                                  for r in sorted(toy_results.results.glob("sub-*/task-*_run-*"))])
         values = values[np.isfinite(values)]
-        assert abs(values.mean()) < 0.1, (contrast, values.mean())
-        assert abs(values.std() - 1.0) < 0.15, (contrast, values.std())
+        n = values.size
+        assert n > 60_000
+        assert abs(values.mean()) < 4 / np.sqrt(n), (contrast, values.mean())
+        assert abs(values.std() - 1.0) < 4 / np.sqrt(2 * n), (contrast, values.std())
+        lo, hi = sps.binom.interval(0.999, n, 0.001)
+        assert lo <= np.sum(np.abs(values) > 3.2905) <= hi, (contrast, np.mean(np.abs(values) > 3.2905))
 
 
 def test_maps_share_the_bold_grid_and_are_nan_outside_the_mask(toy_results, toy_data):
@@ -176,42 +190,41 @@ def test_planted_amplitudes_are_recovered_in_percent_signal_change_at_every_site
 
     The sites' scanners differ in gain by up to 1.7x (east 1.35 / south 0.80), so in raw units
     their effects differ by that much; percent scaling must remove it (README, fit.scaling).
-    At each blob centre and for each site, the subjects' combined effects are compared with the
-    planted amplitude x each subject's amplitude_gain, divided by (1 + m/100) where m is the
-    voxel's mean planted response in percent (percent scaling divides by the voxel's temporal
-    mean, which includes that response). The pooled z = sum(effect - truth) / sqrt(sum(variance))
-    over a site's 4 subjects is N(0, 1) if the estimates are unbiased and their variances right;
-    |z| < 3.29 is its two-sided 0.1 % bound (9 checks: family-wise about 1 %). A 10 % error in the
-    scaling of one site moves its z by about 0.1 x amplitude / SE, i.e. 4-10 here, so it fails.
+    For each blob and site, the subjects' combined effects at every voxel inside the blob (where
+    the planted response has its full amplitude) are compared with the planted amplitude x the
+    subject's amplitude_gain, divided by (1 + m/100), m being the voxel's mean planted response in
+    percent (percent scaling divides by the voxel's temporal mean, which includes it). The toy's
+    noise is independent across voxels, so z = sum(effect - truth) / sqrt(sum(variance)) over a
+    site's 4 subjects x 50-70 voxels is N(0, 1) if the estimates are unbiased and their variances
+    right; |z| < 3.29 is its two-sided 0.1 % bound (9 checks: family-wise about 1 %). The site
+    mean's standard error is about 0.9 % of the amplitude (measured), so a 5 % scaling error of
+    one site moves its z by about 5 and fails.
     """
-    from glmsteps.toystudy import BLOBS, blob_weights, predicted_response, toy_affine
+    from glmsteps.toystudy import blob_weights, predicted_response
 
     truth = json.loads((toy_data / "truth.json").read_text())
     gains = {s["participant_id"].removeprefix("sub-"): s["amplitude_gain"] for s in truth["subjects"]}
     sites = {s["participant_id"].removeprefix("sub-"): s["site"] for s in truth["subjects"]}
-    assert max(truth["sites"][s]["gain"] for s in truth["sites"]) / \
-        min(truth["sites"][s]["gain"] for s in truth["sites"]) == pytest.approx(1.6875)
-    inverse = np.linalg.inv(toy_affine())
+    site_gains = [truth["sites"][s]["gain"] for s in truth["sites"]]
+    assert max(site_gains) / min(site_gains) == pytest.approx(1.6875)
+    xyz = world_grid()
     weights = {b.condition: blob_weights(b) for b in BLOBS}
-    for blob in truth["blobs"]:
-        ijk = tuple(int(round(v)) for v in (inverse @ np.append(blob["centre_mm"], 1.0))[:3])
-        by_site: dict[str, list[tuple[float, float, float]]] = {}
-        for subject, site in sites.items():
-            base = toy_results.results / f"sub-{subject}" / "combined" / f"contrast-{blob['condition']}"
-            effect = float(np.asarray(nib.load(base / "effect.nii.gz").dataobj)[ijk])
-            variance = float(np.asarray(nib.load(base / "variance.nii.gz").dataobj)[ijk])
-            # mean planted response (percent) at this voxel, averaged over the subject's runs
-            means = []
-            for events_path in sorted(toy_data.glob(f"sub-{subject}/func/*_events.tsv")):
-                events = pd.read_csv(events_path, sep="\t")
-                means.append(sum(b.amplitude_percent * gains[subject] * weights[b.condition][ijk]
-                                 * predicted_response(events, b.condition).mean() for b in BLOBS))
-            expected = blob["amplitude_percent"] * gains[subject] / (1.0 + float(np.mean(means)) / 100.0)
-            by_site.setdefault(site, []).append((effect, variance, expected))
-        assert set(by_site) == set(truth["sites"])
-        for site, rows in by_site.items():
-            e, v, x = (np.array(col) for col in zip(*rows))
+    events = {s: [pd.read_csv(f, sep="\t") for f in sorted(toy_data.glob(f"sub-{s}/func/*_events.tsv"))]
+              for s in sites}
+    for blob in BLOBS:
+        inside = (np.linalg.norm(xyz - np.asarray(blob.centre_mm), axis=-1) <= blob.radius_mm) & brain_mask()
+        assert inside.sum() >= 50
+        for site in truth["sites"]:
+            effects, variances, expected = [], [], []
+            for subject in (s for s in sites if sites[s] == site):
+                base = toy_results.results / f"sub-{subject}" / "combined" / f"contrast-{blob.condition}"
+                effects.append(np.asarray(nib.load(base / "effect.nii.gz").dataobj, dtype=float)[inside])
+                variances.append(np.asarray(nib.load(base / "variance.nii.gz").dataobj, dtype=float)[inside])
+                # mean planted response (percent) at each voxel, averaged over the subject's runs
+                m = np.mean([sum(b.amplitude_percent * gains[subject] * weights[b.condition][inside]
+                                 * predicted_response(ev, b.condition).mean() for b in BLOBS)
+                             for ev in events[subject]], axis=0)
+                expected.append(blob.amplitude_percent * gains[subject] / (1.0 + m / 100.0))
+            e, v, x = (np.concatenate(a) for a in (effects, variances, expected))
             z = (e - x).sum() / np.sqrt(v.sum())
-            assert abs(z) < 3.29, (blob["condition"], site, e, x, z)
-            # and in plain words: the site's mean effect is within 10 % of the planted amplitude
-            assert abs(e.mean() / x.mean() - 1.0) < 0.10, (blob["condition"], site, e.mean(), x.mean())
+            assert abs(z) < 3.29, (blob.condition, site, e.mean() / x.mean(), z)

@@ -68,7 +68,8 @@ from .autocorrelation import (MAX_ABS_RHO, MAX_AR_ORDER, MIN_BIAS_MATRIX_RCOND, 
                               extend_autocorrelation, levinson_durbin, truncated_autocorrelation)
 from .ols import (DesignFactors, FloatArray, OlsBlock, ScalingMethod, apply_group_matrices, compute_scale_factors,
                   fit_ols, multiply_columns, prepare_design)
-from .smoothing import convolve_axis, gaussian_kernel, smooth_voxel_values
+from .smoothing import (DEFAULT_SMOOTHING_VOXELS, convolve_axis, default_smoothing_fwhm_mm, gaussian_kernel,
+                        smooth_voxel_values)
 from .whitening import (Ar1Summary, NoiseBins, WhitenedBlock, assign_bins, bin_means, fit_ar1_block, fit_ar1_summary,
                         fit_arp_summary, prepare_bins, summarise_residuals, whiten_ar, whitened_covariance)
 

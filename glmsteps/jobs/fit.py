@@ -55,7 +55,7 @@ DEFAULT_CHUNK_VOXELS = 4096
 _SUMMARY_KEYS = ("names", "roles", "conditions", "basis", "first_volume", "n_volumes", "excluded", "repetition_time_s")
 #: Defaults of the step's params: those of the ``fit`` section of config/schema.yaml (``tests/test_jobs_fit.py``).
 DEFAULTS: dict[str, Any] = {"scaling": "percent", "grand_mean_value": 100.0, "autocorrelation": "arp", "ar_order": 8,
-                            "ar_smoothing_fwhm_mm": 5.0, "ar_bin_width": 0.01, "non_finite_voxels": "error"}
+                            "ar_smoothing_fwhm_mm": None, "ar_bin_width": 0.01, "non_finite_voxels": "error"}
 NonFinitePolicy = Literal["error", "drop"]
 
 logger = logging.getLogger("glmsteps")
@@ -69,9 +69,16 @@ class FitSettings:
     grand_mean_value: float
     autocorrelation: est.NoiseModel
     ar_order: int
-    ar_smoothing_fwhm_mm: float
+    ar_smoothing_fwhm_mm: float | None
     ar_bin_width: float
     non_finite_voxels: NonFinitePolicy
+
+
+def smoothing_fwhm_mm(settings: FitSettings, voxel_size_mm: npt.ArrayLike) -> float:
+    """The AR smoothing FWHM (mm) of a run: the configured value, else twice its voxel size."""
+    if settings.ar_smoothing_fwhm_mm is not None:
+        return settings.ar_smoothing_fwhm_mm
+    return est.default_smoothing_fwhm_mm(voxel_size_mm)
 
 
 def check_params(params: Mapping[str, Any]) -> FitSettings:
@@ -94,7 +101,7 @@ def check_params(params: Mapping[str, Any]) -> FitSettings:
     try:
         gm = float(p["grand_mean_value"])
         order = int(p["ar_order"])
-        fwhm = float(p["ar_smoothing_fwhm_mm"])
+        fwhm = None if p["ar_smoothing_fwhm_mm"] is None else float(p["ar_smoothing_fwhm_mm"])
         width = float(p["ar_bin_width"])
     except (TypeError, ValueError) as exc:
         raise ConfigError(f"config fit: a numeric setting is not a number ({exc}); fix the value") from exc
@@ -102,7 +109,7 @@ def check_params(params: Mapping[str, Any]) -> FitSettings:
         raise ConfigError(f"config fit.grand_mean_value: expected a positive number, found {gm}")
     if not 1 <= order <= est.MAX_AR_ORDER:
         raise ConfigError(f"config fit.ar_order: expected 1 to {est.MAX_AR_ORDER}, found {order}")
-    if not (fwhm >= 0 and np.isfinite(fwhm)):
+    if fwhm is not None and not (fwhm >= 0 and np.isfinite(fwhm)):
         raise ConfigError(f"config fit.ar_smoothing_fwhm_mm: expected a number >= 0 (mm), found {fwhm}")
     if not 0 < width <= 0.1:
         raise ConfigError(f"config fit.ar_bin_width: expected a number in (0, 0.1], found {width}")
@@ -410,7 +417,8 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], tissue: npt.NDArray[np.in
                      voxel_size_mm=np.asarray(bold.voxel_size_mm, dtype=np.float64),
                      classes=None if tissue is None else tissue.ravel()[voxel_index])
     noise = NoiseSettings(model=settings.autocorrelation, order=order,
-                          smoothing_fwhm_mm=settings.ar_smoothing_fwhm_mm, bin_width=settings.ar_bin_width)
+                          smoothing_fwhm_mm=smoothing_fwhm_mm(settings, bold.voxel_size_mm),
+                          bin_width=settings.ar_bin_width)
     t0 = time.perf_counter()
     vf = fit_voxels(data, columns, factors, design, noise, chunk_voxels(threads), grid, threads=threads)
     grid_order = np.argsort(voxel_index, kind="stable")  # the fit is stored in C order
@@ -425,7 +433,8 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], tissue: npt.NDArray[np.in
                     bin_covariance=vf.bin_covariance, bin_rho=vf.bin_rho, mean_image=mean_image, excluded=False,
                     attrs={"status_counts": counts, "ar_order": int(vf.order), "rank": int(design.rank)})
     extra = {"excluded": False, "voxel_counts": counts, "dropped_non_finite_voxels": counts["non_finite"],
-             "autocorrelation": settings.autocorrelation, "ar_order": int(vf.order), "dof": int(design.dof),
+             "autocorrelation": settings.autocorrelation, "ar_order": int(vf.order),
+             "ar_smoothing_fwhm_mm_used": noise.smoothing_fwhm_mm, "dof": int(design.dof),
              "rank": int(design.rank), "n_bins": int(vf.bin_rho.size),
              "n_tissue_classes": None if tissue is None else int(np.unique(grid.classes).size),
              "n_volumes_fitted": int(design.X.shape[0]), "n_censored": int(design.censored.sum()),

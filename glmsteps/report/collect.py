@@ -220,11 +220,11 @@ class Linker:
         if not record:
             return "", ""
         target = self.records.recorded(path)
-        name = cache_key("audit", {"path": target, "lineage": lineage_of(record)}) + ".txt"
+        name = cache_key("audit", {"path": target, "lineage": lineage_of(record), "form": "summary"}) + ".txt"
 
         def make() -> str:
             chain = audit.build_chain(target, record, self.records.loader, str(self.records.root))
-            return audit.render_text(chain)
+            return audit.render_summary(chain)    # what `glmsteps audit` prints by default
 
         try:
             file, text = self.cache.text(name, make)
