@@ -18,8 +18,8 @@ rule combine_runs:
         "subject_{subject}"
     log:
         LOG_DIR + "/sub-{subject}/combined/contrast-{contrast}.log",
-    script:
-        "../scripts/combine_runs.py"
+    shell:
+        step_command("combine_runs")
 
 
 use rule combine_runs as combine_runs_f with:

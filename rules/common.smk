@@ -16,6 +16,7 @@ from snakemake.utils import validate
 
 from glmsteps.bids import RunKey, check_pattern, discover_runs, parse_run_id
 from glmsteps.errors import ConfigError, GlmstepsError
+from glmsteps.launch import command_template
 from glmsteps.precheck import check_config_contrasts
 from glmsteps.renames import check_renamed
 from glmsteps.report.summary import print_run_summary
@@ -219,6 +220,22 @@ def subject_effects(wildcards):
 
 def subject_variances(wildcards):
     return subject_maps_of(wildcards, "variance")
+
+
+# ---------------------------------------------------------------- how jobs run
+def step_command(step):
+    """Shell command of a light step: ``python -m glmsteps.launch`` (a fork of a warm process).
+
+    Light steps (events, confounds, design, contrasts, combining runs, thresholds) take well
+    under a second, less than a fresh Python's imports; the launcher runs them in a process
+    forked from one that imported everything once (see glmsteps/launch.py). Their inputs are a
+    handful of files, so the command line stays short. Heavy steps (fit, group models,
+    permutations, report) and the steps that read every map (index, report, whose input
+    lists would exceed the kernel's 128 KB limit on one shell argument) keep their
+    ``script:``: their own process, measured by Snakemake's benchmark and a cluster's memory
+    accounting.
+    """
+    return command_template(step)
 
 
 # ---------------------------------------------------------------- params (one helper per step)

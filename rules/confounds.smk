@@ -10,5 +10,5 @@ rule select_confounds:
         settings=confounds_params(),
     log:
         LOG_DIR + "/sub-{subject}/{run_id}/select_confounds.log",
-    script:
-        "../scripts/select_confounds.py"
+    shell:
+        step_command("select_confounds")

@@ -15,8 +15,8 @@ rule contrast_t:
         "subject_{subject}"
     log:
         LOG_DIR + "/sub-{subject}/{run_id}/contrast-{contrast}.log",
-    script:
-        "../scripts/contrast.py"
+    shell:
+        step_command("contrast")
 
 
 rule contrast_f:
@@ -34,5 +34,5 @@ rule contrast_f:
         "subject_{subject}"
     log:
         LOG_DIR + "/sub-{subject}/{run_id}/contrast-{contrast}.log",
-    script:
-        "../scripts/contrast.py"
+    shell:
+        step_command("contrast")

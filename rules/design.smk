@@ -13,6 +13,6 @@ rule build_design:
         settings=design_params(),
     log:
         LOG_DIR + "/sub-{subject}/{run_id}/build_design.log",
-    script:
-        "../scripts/build_design.py"
+    shell:
+        step_command("build_design")
 

@@ -10,5 +10,5 @@ rule validate_events:
         settings=events_params(),
     log:
         LOG_DIR + "/sub-{subject}/{run_id}/validate_events.log",
-    script:
-        "../scripts/validate_events.py"
+    shell:
+        step_command("validate_events")

@@ -17,8 +17,8 @@ rule threshold_run:
         "subject_{subject}"
     log:
         LOG_DIR + "/sub-{subject}/{run_id}/contrast-{contrast}_threshold-{threshold}.log",
-    script:
-        "../scripts/threshold.py"
+    shell:
+        step_command("threshold")
 
 
 use rule threshold_run as threshold_subject with:
