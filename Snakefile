@@ -26,6 +26,10 @@ include: "rules/index.smk"
 include: "rules/report.smk"
 
 
+onstart:
+    start_launcher()
+
+
 onsuccess:
     print_run_summary(OUT, RUN_STARTED, ok=True)
 

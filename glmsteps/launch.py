@@ -152,7 +152,7 @@ def parse_request(argv: list[str]) -> JobRequest:
         raise LaunchError(f"glmsteps.launch: malformed command line ({exc}): {argv!r}") from exc
 
 
-def command_template(step: str, python: str | None = None) -> str:
+def command_template(step: str, python: str | None = None, warm: bool = True) -> str:
     """The shell command of a rule that runs ``step`` through the launcher.
 
     Parameters
@@ -161,6 +161,9 @@ def command_template(step: str, python: str | None = None) -> str:
         Key of :data:`STEP_MODULES`.
     python : str, optional
         Interpreter (default: the running one, i.e. Snakemake's).
+    warm : bool
+        Through the warm server (default), or in the client's own process (``--direct``:
+        a heavy step whose resources Snakemake's benchmark and a cluster should see).
 
     Returns
     -------
@@ -174,7 +177,8 @@ def command_template(step: str, python: str | None = None) -> str:
         raise LaunchError(f"glmsteps.launch: unknown step {step!r}; known: {sorted(STEP_MODULES)}")
     names = " ".join(f"{{{kind}._names:q}}" for kind in ("input", "output", "params"))
     values = f" {SEPARATOR} ".join(("{input:q}", "{output:q}", "{params:q}", "{wildcards}", "{log:q}"))
-    return (f"{shlex.quote(python or sys.executable)} -m glmsteps.launch {step} {{threads}} {names} "
+    direct = "" if warm else "--direct "
+    return (f"{shlex.quote(python or sys.executable)} -m glmsteps.launch {direct}{step} {{threads}} {names} "
             f"{SEPARATOR} {values}")
 
 
@@ -250,6 +254,24 @@ def _start_server(path: Path) -> None:
                      start_new_session=True, close_fds=True)
 
 
+def start_server() -> None:
+    """Start the warm server for this code in the background, when warm mode is on (idempotent).
+
+    The Snakefile calls it when a run starts, so that the server has imported everything by
+    the time the first light jobs run (otherwise they run cold until it is ready).
+    """
+    if not warm_enabled():
+        return
+    path = socket_path()
+    probe = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    try:
+        probe.connect(str(path))
+    except OSError:
+        _start_server(path)
+    finally:
+        probe.close()
+
+
 def run_warm(request: JobRequest, path: Path) -> int | None:
     """Run a job through the server at ``path``; ``None`` when no server answers."""
     sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
@@ -293,11 +315,12 @@ def main(argv: list[str] | None = None) -> int:
     if args[:1] == ["--serve"]:
         serve(Path(args[1]))
         return 0
-    request = parse_request(args)
+    direct = args[:1] == ["--direct"]
+    request = parse_request(args[1:] if direct else args)
     if request.step not in STEP_MODULES:
         raise LaunchError(f"glmsteps.launch: unknown step {request.step!r}; known: {sorted(STEP_MODULES)}")
     request = JobRequest(**{**asdict(request), "cwd": os.getcwd(), "env": dict(os.environ)})
-    if warm_enabled():
+    if not direct and warm_enabled():
         path = socket_path()
         code = run_warm(request, path)
         if code is not None:

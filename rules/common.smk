@@ -16,7 +16,7 @@ from snakemake.utils import validate
 
 from glmsteps.bids import RunKey, check_pattern, discover_runs, parse_run_id
 from glmsteps.errors import ConfigError, GlmstepsError
-from glmsteps.launch import command_template
+from glmsteps.launch import command_template, start_server
 from glmsteps.precheck import check_config_contrasts
 from glmsteps.renames import check_renamed
 from glmsteps.report.summary import print_run_summary
@@ -143,6 +143,8 @@ RUN_DIR = OUT + "/sub-{subject}/{run_id}"
 SUBJECT_DIR = OUT + "/sub-{subject}/combined"
 GROUP_DIR = OUT + "/group/model-{model}/contrast-{contrast}/{group_contrast}"
 LOG_DIR = OUT + "/logs"
+#: Snakemake's benchmark files (wall time, memory, CPU) of the heavy steps.
+BENCHMARK_DIR = OUT + "/benchmarks"
 REPORT_DIR = OUT + "/report"
 
 
@@ -223,6 +225,11 @@ def subject_variances(wildcards):
 
 
 # ---------------------------------------------------------------- how jobs run
+def start_launcher():
+    """Warm the light steps' launcher as the run starts (see glmsteps/launch.py)."""
+    start_server()
+
+
 def step_command(step):
     """Shell command of a light step: ``python -m glmsteps.launch`` (a fork of a warm process).
 
@@ -236,6 +243,12 @@ def step_command(step):
     accounting.
     """
     return command_template(step)
+
+
+def heavy_step_command(step):
+    """Shell command of a heavy step (the fit): its own fresh process, so that Snakemake's
+    ``benchmark:`` and a cluster's accounting measure it, without Snakemake's script preamble."""
+    return command_template(step, warm=False)
 
 
 # ---------------------------------------------------------------- params (one helper per step)

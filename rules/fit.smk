@@ -19,5 +19,7 @@ rule fit:
         runtime=30,
     log:
         LOG_DIR + "/sub-{subject}/{run_id}/fit.log",
-    script:
-        "../scripts/fit.py"
+    benchmark:
+        BENCHMARK_DIR + "/sub-{subject}/{run_id}/fit.tsv"
+    shell:
+        heavy_step_command("fit")

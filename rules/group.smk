@@ -21,6 +21,8 @@ rule group_model:
         mem_mb=4000,
     log:
         LOG_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}.log",
+    benchmark:
+        BENCHMARK_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}.tsv"
     script:
         "../scripts/group_model.py"
 
@@ -45,5 +47,7 @@ rule group_permutation:
         runtime=120,
     log:
         LOG_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}_permutation.log",
+    benchmark:
+        BENCHMARK_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}_permutation.tsv"
     script:
         "../scripts/group_permutation.py"

@@ -54,7 +54,7 @@ def test_adding_a_contrast_runs_only_its_jobs(toy_results):
     config = copy.deepcopy(toy_results.config)
     config["contrasts"]["tap_minus_flash"] = {"weights": {"tap": 1, "flash": -1}}
     jobs = _plan(toy_results, config)
-    assert _rules(jobs) == {"contrast_t", "threshold_run", "combine_runs", "threshold_subject", "index", "report"}
+    assert _rules(jobs) == {"contrast_t", "combine_runs", "threshold_subject", "index", "report"}
     for rule, wc in jobs:
         if rule not in ("index", "report"):
             assert wc.get("tcon", wc.get("contrast")) == "tap_minus_flash", (rule, wc)
@@ -65,7 +65,7 @@ def test_changing_one_contrast_reruns_only_its_chain(toy_results):
     config = copy.deepcopy(toy_results.config)
     config["contrasts"]["flash_minus_horn"]["weights"] = {"flash": 2, "horn": -2}
     jobs = _plan(toy_results, config)
-    assert _rules(jobs) == {"contrast_t", "threshold_run", "combine_runs", "threshold_subject", "group_model",
+    assert _rules(jobs) == {"contrast_t", "combine_runs", "threshold_subject", "group_model",
                             "group_permutation", "threshold_group", "index", "report"}
     for rule, wc in jobs:
         if rule not in ("index", "report"):
@@ -131,7 +131,17 @@ def test_changing_permutation_settings_reruns_only_permutations(toy_results):
 
 def test_changing_a_threshold_reruns_only_its_jobs(toy_results):
     config = copy.deepcopy(toy_results.config)
-    config["thresholds"]["run"]["fdr05"]["q"] = 0.01
+    config["thresholds"]["subject"]["fdr05"]["q"] = 0.01
+    jobs = _plan(toy_results, config)
+    # the report shows subject-level thresholded maps, so it reruns with them
+    assert _rules(jobs) == {"threshold_subject", "report"}
+    assert sum(rule == "threshold_subject" for rule, _ in jobs) == 12 * 5   # 4 t and 1 F contrast
+
+
+def test_adding_a_run_threshold_runs_only_its_jobs(toy_results):
+    """The toy config thresholds no run-level map; a new run-level setting adds only its own jobs."""
+    config = copy.deepcopy(toy_results.config)
+    config["thresholds"]["run"] = {"fdr05": {"method": "fdr", "q": 0.05}}
     jobs = _plan(toy_results, config)
     # the report shows no run-level threshold, so it does not rerun either
     assert _rules(jobs) == {"threshold_run"}

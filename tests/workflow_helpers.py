@@ -49,6 +49,9 @@ class Workspace:
             config_path.write_text(yaml.safe_dump(config, sort_keys=False))
         env = dict(os.environ)
         env["PYTHONPATH"] = str(REPO) + os.pathsep + env.get("PYTHONPATH", "")
+        if ("--dry-run" in args or "-n" in args) and "--quiet" not in args:
+            # the default profile hides per-job lines (profiles/default); a plan is read from them
+            args = (*args, "--quiet", "host")
         cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "Snakefile"), "--directory",
                str(self.workdir), "--configfile", str(config_path), *args]
         proc = _run_with_progress(cmd, env, timeout, show="--dry-run" not in args and "-n" not in args)

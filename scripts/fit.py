@@ -1,6 +1,0 @@
-"""Snakemake adapter: forward the rule's input/output/params to glmsteps.jobs.fit.run."""
-
-from glmsteps.jobs.common import run_script
-from glmsteps.jobs.fit import run
-
-run_script(run, snakemake)  # noqa: F821 (injected by Snakemake)
