@@ -24,6 +24,12 @@ A contrast key may be (see :mod:`glmsteps.contrasts`):
   key it matches, and a key naming a column the table lacks fails at the
   contrast step.
 
+:func:`check_config_names` and :func:`check_output_dir` check the names that
+become folder names (contrasts, thresholds, group models and their contrasts:
+at most :data:`MAX_NAME_LENGTH` characters of letters, digits and underscores)
+and refuse an ``output_dir`` that is, holds or lies inside ``inputs.root``;
+:func:`check_config_start` runs both.
+
 This module reads files but does no maths; it imports neither snakemake nor
 numpy, pandas or scipy (the Snakefile imports it at every start).
 """
@@ -36,7 +42,7 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from .errors import ContrastError, EventsError
+from .errors import ConfigError, ContrastError, EventsError
 from .names import (ALL_SUFFIX, BASIS_SEPARATOR, DIFF_SUFFIX, FIR_PREFIX, INTERCEPT, LATENCY_BASIS, MODULATOR_INFIX,
                     SLOW_PREFIX, SPIKE_PREFIX, SQUARE_SUFFIX, WIDTH_BASIS)
 from .renames import renamed_column
@@ -49,6 +55,13 @@ MODEL_SUFFIXES: dict[str, tuple[str, ...]] = {
     "double_gamma_latency_width": (LATENCY_BASIS, WIDTH_BASIS), "fir": (),
 }
 _MISSING = {"", "n/a"}
+#: Longest contrast, threshold, group model or group contrast name (characters). Each becomes one
+#: folder name (``contrast-<name>``, ``threshold-<name>``...), and a file system allows 255 bytes per
+#: name; 100 also keeps the deepest output path (group model, contrast, group contrast and threshold
+#: folders) far below the 4,096-byte path limit.
+MAX_NAME_LENGTH = 100
+#: Characters a name may hold: each is a folder name and a Snakemake wildcard value.
+_SAFE_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_]*")
 
 
 def read_conditions(path: str | os.PathLike[str], condition_column: str) -> set[str]:
@@ -263,3 +276,104 @@ def check_config_contrasts(config: Mapping[str, Any],
                                fir_bins=design["fir_bins"], conditions=events["conditions"],
                                modulators=events["modulators"], confound_columns=confounds["columns"],
                                derivatives=confounds["derivatives"], squares=confounds["squares"])
+
+
+def _shown(name: str) -> str:
+    """A name as an error shows it: long names cut to 40 characters."""
+    return repr(name) if len(name) <= 40 else repr(name[:40]) + f"... ({len(name)} characters)"
+
+
+def check_name(key: str, name: Any) -> None:
+    """Check one name that becomes a folder name (and a Snakemake wildcard value).
+
+    Parameters
+    ----------
+    key : str
+        Where the name sits in the config, e.g. ``contrasts`` or ``thresholds.group``.
+    name : object
+        The name (a mapping key of the config; YAML may make it a number).
+
+    Raises
+    ------
+    ConfigError
+        Not a string of letters, digits and underscores starting with a letter
+        or digit, or longer than :data:`MAX_NAME_LENGTH` characters.
+    """
+    text = str(name)
+    if not isinstance(name, str) or not _SAFE_NAME.fullmatch(text):
+        raise ConfigError(f"config {key}: name {_shown(text)} is not usable as a folder name; rename it to letters, "
+                          "digits and underscores, starting with a letter or digit (quote it in YAML)")
+    if len(text) > MAX_NAME_LENGTH:
+        raise ConfigError(f"config {key}: name {_shown(text)} is longer than {MAX_NAME_LENGTH} characters (it "
+                          f"becomes a folder name, limited to 255 bytes); rename it to at most {MAX_NAME_LENGTH} "
+                          "characters")
+
+
+def check_config_names(config: Mapping[str, Any]) -> None:
+    """Check every name of a validated config that becomes a folder name (see :func:`check_name`).
+
+    Parameters
+    ----------
+    config : mapping
+        The config after schema validation (defaults filled in).
+
+    Raises
+    ------
+    ConfigError
+        Names the key and the name.
+    """
+    for name in config.get("contrasts", {}):
+        check_name("contrasts", name)
+    for level, settings in (config.get("thresholds") or {}).items():
+        for name in settings or {}:
+            check_name(f"thresholds.{level}", name)
+    for model, spec in (config.get("group_models") or {}).items():
+        check_name("group_models", model)
+        for name in (spec or {}).get("group_contrasts", {}):
+            check_name(f"group_models.{model}.group_contrasts", name)
+
+
+def check_output_dir(output_dir: str | os.PathLike[str], root: str | os.PathLike[str],
+                     workdir: str | os.PathLike[str] = ".") -> None:
+    """Refuse an output folder that is the input root, lies inside it or holds it.
+
+    Outputs written among the inputs could be taken for inputs by a later run's
+    discovery, and clearing the results would delete the data.
+
+    Parameters
+    ----------
+    output_dir, root : path-like
+        ``output_dir`` and ``inputs.root``; relative paths are relative to ``workdir``.
+    workdir : path-like
+        The working folder (Snakemake's ``--directory``).
+
+    Raises
+    ------
+    ConfigError
+        One line naming both folders and the fix.
+    """
+    out = os.path.realpath(os.path.join(workdir, output_dir))
+    data = os.path.realpath(os.path.join(workdir, root))
+    if out == data:
+        how = "is the input folder inputs.root"
+    elif out.startswith(data.rstrip(os.sep) + os.sep):
+        how = "lies inside the input folder inputs.root"
+    elif data.startswith(out.rstrip(os.sep) + os.sep):
+        how = "holds the input folder inputs.root"
+    else:
+        return
+    raise ConfigError(f"config output_dir {os.fspath(output_dir)!r} ({out}) {how} ({data}); set output_dir to a "
+                      "folder outside the data, e.g. results")
+
+
+def check_config_start(config: Mapping[str, Any], workdir: str | os.PathLike[str] = ".") -> None:
+    """The config checks made when the workflow starts, before any job and before the DAG is built.
+
+    :func:`check_config_names`, then :func:`check_output_dir`.
+
+    Raises
+    ------
+    ConfigError
+    """
+    check_config_names(config)
+    check_output_dir(config["output_dir"], config["inputs"]["root"], workdir)
