@@ -353,7 +353,12 @@ def load_group_data(inputs: Mapping[str, Any], params: Mapping[str, Any],
         if settings["harmonise_sites"]:
             raise GroupError(f"{participants}: site column {site_column!r} is absent; add it or set "
                              "harmonise_sites: false")
-        warnings.warn(f"{participants}: no site column {site_column!r}; site is not modelled "
+        if settings["site_as_covariate"]:
+            # modelling site without its column would silently fit another model than the config asks for
+            raise GroupError(f"{participants}: site column {site_column!r} is absent, so site cannot be modelled "
+                             "(site_as_covariate); add the column, or set site_column: null for a single-site "
+                             "study")
+        warnings.warn(f"{participants}: no site column {site_column!r}; the site QC treats the study as one site "
                       "(add the column, or set site_column: null for a single-site study)",
                       GlmstepsWarning, stacklevel=2)
         site_column = None
