@@ -126,9 +126,27 @@ def read_user_tsv(path: str | os.PathLike[str], error: type[Exception], fix: str
     import pandas as pd
 
     try:
-        return read_tsv(path)
-    except (OSError, UnicodeDecodeError, pd.errors.ParserError) as exc:
-        raise error(f"{path}: cannot read as a tab-separated table with a header line ({exc}); {fix}") from exc
+        with open(path, "rb") as handle:
+            head = handle.read(65536)
+    except OSError as exc:
+        raise error(f"{path}: cannot read the file ({exc.strerror or exc}); {fix}") from exc
+    if not head.strip():
+        raise error(f"{path}: the file is empty (no header line); {fix}")
+    try:
+        table = read_tsv(path)
+    except UnicodeDecodeError as exc:
+        raise error(f"{path}: not UTF-8 text (byte 0x{exc.object[exc.start]:02x} at byte {exc.start}); save it "
+                    f"as UTF-8 ({fix})") from exc
+    except (OSError, pd.errors.ParserError) as exc:
+        reason = " ".join(str(exc).split())
+        raise error(f"{path}: cannot read as a tab-separated table with a header line ({reason}); {fix}") from exc
+    header = head.splitlines()[0].decode("utf-8", "replace")
+    if "\t" not in header and len(table.columns) == 1:
+        for sep, word in ((",", "commas"), (";", "semicolons")):
+            if sep in header:
+                raise error(f"{path}: the header line has no tab but {header.count(sep)} {word} "
+                            f"({header[:60]!r}); a BIDS TSV separates its columns by tabs; {fix} (tab-separated)")
+    return table
 
 
 def read_numeric_tsv(path: str | os.PathLike[str]) -> tuple[list[str], np.ndarray]:

@@ -28,7 +28,8 @@ A contrast key may be (see :mod:`glmsteps.contrasts`):
 become folder names (contrasts, thresholds, group models and their contrasts:
 at most :data:`MAX_NAME_LENGTH` characters of letters, digits and underscores)
 and refuse an ``output_dir`` that is, holds or lies inside ``inputs.root``;
-:func:`check_config_start` runs both.
+:func:`check_contrast_weights` refuses a contrast row of zero weights;
+:func:`check_config_start` runs all three.
 
 This module reads files but does no maths; it imports neither snakemake nor
 numpy, pandas or scipy (the Snakefile imports it at every start).
@@ -366,14 +367,34 @@ def check_output_dir(output_dir: str | os.PathLike[str], root: str | os.PathLike
                       "folder outside the data, e.g. results")
 
 
+def check_contrast_weights(contrasts: Mapping[str, Mapping[str, Any]]) -> None:
+    """Refuse a contrast whose weights (or one of whose F rows) are all zero.
+
+    Such a contrast tests nothing; found here, it stops the workflow before the
+    fits instead of at the contrast step after them. (The schema has already
+    checked that every weight is a number.)
+
+    Raises
+    ------
+    ConfigError
+        Names the key (``contrasts.<name>.weights`` or ``contrasts.<name>.rows[i]``).
+    """
+    for name, spec in contrasts.items():
+        for where, weights, _ in _weight_rows(spec):
+            if weights and all(isinstance(w, (int, float)) and w == 0 for w in weights.values()):
+                raise ConfigError(f"config contrasts.{name}.{where}: every weight is 0, so the contrast tests "
+                                  "nothing; give at least one non-zero weight or delete it")
+
+
 def check_config_start(config: Mapping[str, Any], workdir: str | os.PathLike[str] = ".") -> None:
     """The config checks made when the workflow starts, before any job and before the DAG is built.
 
-    :func:`check_config_names`, then :func:`check_output_dir`.
+    :func:`check_config_names`, :func:`check_contrast_weights`, then :func:`check_output_dir`.
 
     Raises
     ------
     ConfigError
     """
     check_config_names(config)
+    check_contrast_weights(config["contrasts"])
     check_output_dir(config["output_dir"], config["inputs"]["root"], workdir)

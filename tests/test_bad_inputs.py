@@ -320,13 +320,16 @@ EVENTS_ERRORS: dict[str, dict[str, Any]] = {
     "modulator_na_on_own_rows": dict(rows=["4\t10\ttap\tn/a", "30\t10\tflash\tn/a", "50\t10\ttap\t0.3"],
                                      words=("row 1", "'rt'")),
     "non_numeric_modulator": dict(rows=["4\t10\ttap\tfast", "50\t10\ttap\t0.3"], words=("row 1", "'rt'")),
-    "empty_file": dict(text=b"", words=()),
+    "empty_file": dict(text=b"", words=("empty",)),
+    "blank_lines_only": dict(text=b"\n\n  \n", words=("empty",)),
     "header_only": dict(rows=[], words=()),
-    "comma_delimited": dict(text=b"onset,duration,trial_type,rt\n4,10,tap,0.4\n", words=("'onset'",)),
+    "comma_delimited": dict(text=b"onset,duration,trial_type,rt\n4,10,tap,0.4\n", words=("3 commas", "tab")),
+    "semicolon_delimited": dict(text=b"onset;duration;trial_type\n4;10;tap\n", words=("2 semicolons", "tab")),
     "bold_3d": dict(bold={"shape": SHAPE}, words=("bold.nii.gz",), file="bold.nii.gz"),
     "tr_differs_from_config": dict(bold={"tr_s": 2.5}, words=("bold.nii.gz", "acquisition.repetition_time_s"),
                                    file="bold.nii.gz"),
-    "latin1_bytes": dict(text=EVENTS_HEADER.encode() + b"\n4\t10\tcaf\xe9\t0.4\n", words=()),
+    "latin1_bytes": dict(text=EVENTS_HEADER.encode() + b"\n4\t10\tcaf\xe9\t0.4\n",
+                         words=("not UTF-8", "0xe9", "save it as UTF-8")),
 }
 
 
@@ -403,7 +406,9 @@ CONFOUNDS_ERRORS: dict[str, dict[str, Any]] = {
     "nan_in_selected_column": dict(nan_at=12, words=("'move_y'", "row 13")),
     "censor_column_absent": dict(params={"censor": {**CONFOUND_PARAMS["censor"], "column": "fd"}},
                                  words=("'fd'", "confounds.censor.column")),
-    "empty_file": dict(text=b"", words=()),
+    "empty_file": dict(text=b"", words=("empty",)),
+    "comma_delimited": dict(text=("move_x,move_y,move_z,displacement_mm\n"
+                                  + "0.1,0.2,0.1,0.1\n" * N_VOLUMES).encode(), words=("3 commas", "tab")),
     "non_numeric_value": dict(text=("move_x\tmove_y\tmove_z\tdisplacement_mm\n"
                                     + "".join(f"0.1\t{'big' if i == 5 else '0.2'}\t0.1\t0.1\n"
                                               for i in range(N_VOLUMES))).encode(),
@@ -476,9 +481,11 @@ def contrast_case(tmp: Path, chain: Path, definition: dict[str, Any], outputs: d
 
 
 CONTRAST_ERRORS: dict[str, dict[str, Any]] = {
-    "f_row_all_zero": dict(definition={"rows": [{"tap": 1}, {"flash": 0}]}, kind="F"),
-    "weight_on_absent_column": dict(definition={"weights": {"horn": 1}}, kind="t"),
-    "non_numeric_weight": dict(definition={"weights": {"tap": "one"}}, kind="t"),
+    "f_row_all_zero": dict(definition={"rows": [{"tap": 1}, {"flash": 0}]}, kind="F",
+                           words=("contrasts.bad.rows[1]", "non-zero weight")),
+    "weight_on_absent_column": dict(definition={"weights": {"horn": 1}}, kind="t", words=("'horn'",)),
+    "non_numeric_weight": dict(definition={"weights": {"tap": "one"}}, kind="t",
+                               words=("contrasts.bad.weights", "write a number")),
 }
 
 
@@ -486,7 +493,7 @@ CONTRAST_ERRORS: dict[str, dict[str, Any]] = {
 def test_contrast_user_errors(tmp_path: Path, chain: Path, name: str) -> None:
     case = CONTRAST_ERRORS[name]
     outputs = (f_outputs if case["kind"] == "F" else t_outputs)(tmp_path / "results")
-    line = assert_user_error(contrast_case(tmp_path, chain, case["definition"], outputs), "'bad'")
+    line = assert_user_error(contrast_case(tmp_path, chain, case["definition"], outputs), "'bad'", *case["words"])
     assert "ContrastError" in line or "ConfigError" in line
 
 
@@ -624,6 +631,8 @@ DRY_RUN_ERRORS: dict[str, dict[str, Any]] = {
     "long_contrast_name": dict(edit={"contrasts.tap_" + "y" * 120: {"weights": {"tap": 1}}},
                                words=("config contrasts", "at most 100")),
     "output_dir_is_root": dict(edit={"output_dir": "ROOT"}, words=("output_dir", "inputs.root")),
+    "zero_weight_f_row": dict(edit={"contrasts.any_task.rows": [{"tap": 1}, {"flash": 0}]},
+                              words=("config contrasts.any_task.rows[1]", "non-zero weight")),
     "empty_contrasts": dict(edit={"contrasts": {}}, words=("contrasts",)),
     "unknown_condition_in_contrast": dict(edit={"contrasts.typo": {"weights": {"tapp": 1}}},
                                           words=("contrast 'typo'", "'tapp'")),
