@@ -289,7 +289,8 @@ def assert_accepted_with_warning(outcome: Outcome, sidecar: str, *words: str) ->
 # --------------------------------------------------------------------------- events (validate_events)
 
 def events_case(tmp: Path, rows: list[str] | None = None, header: str = EVENTS_HEADER, text: bytes | None = None,
-                params: dict[str, Any] | None = None, bold: dict[str, Any] | None = None) -> Outcome:
+                params: dict[str, Any] | None = None, bold: dict[str, Any] | None = None,
+                bold_bytes: Callable[[bytes], bytes] | None = None, sidecar: str | None = None) -> Outcome:
     raw = tmp / "raw"
     raw.mkdir(parents=True, exist_ok=True)
     path = raw / EVENTS_FILE
@@ -298,8 +299,13 @@ def events_case(tmp: Path, rows: list[str] | None = None, header: str = EVENTS_H
     else:
         write_events(path, rows, header)
     bold_path = write_bold(raw / "bold.nii.gz", **(bold or {}))
-    return run_job(events_job.run, {"events": str(path), "bold": str(bold_path)}, event_outputs(tmp / "results"),
-                   {**EVENTS_PARAMS, **(params or {})}, tmp)
+    if bold_bytes is not None:
+        bold_path.write_bytes(bold_bytes(bold_path.read_bytes()))
+    inputs: dict[str, Any] = {"events": str(path), "bold": str(bold_path)}
+    if sidecar is not None:
+        (raw / "bold.json").write_text(sidecar, encoding="utf-8")
+        inputs["bold_sidecar"] = [str(raw / "bold.json")]
+    return run_job(events_job.run, inputs, event_outputs(tmp / "results"), {**EVENTS_PARAMS, **(params or {})}, tmp)
 
 
 EVENTS_FILE = "sub-01_task-demo_run-1_events.tsv"
@@ -325,7 +331,28 @@ EVENTS_ERRORS: dict[str, dict[str, Any]] = {
     "header_only": dict(rows=[], words=()),
     "comma_delimited": dict(text=b"onset,duration,trial_type,rt\n4,10,tap,0.4\n", words=("3 commas", "tab")),
     "semicolon_delimited": dict(text=b"onset;duration;trial_type\n4;10;tap\n", words=("2 semicolons", "tab")),
+    "repeated_header_column": dict(header="onset\tduration\ttrial_type\tonset", rows=["4\t2\ttap\t9"],
+                                   words=("['onset']", "more than once")),
+    "row_with_a_cell_too_many": dict(rows=["4\t10\ttap\t0.4", "24\t10\tflash\t0.6\textra"],
+                                     words=("data row 2", "5 tab-separated cells", "header line 4")),
+    "row_with_a_cell_too_few": dict(rows=["4\t10\ttap\t0.4", "24\t10\tflash"],
+                                    words=("data row 2", "3 tab-separated cells")),
+    "condition_na": dict(rows=["4\t10\ttap\t0.4", "24\t10\tn/a\t0.6"], words=("row 2", "'trial_type'")),
+    "onsets_in_milliseconds": dict(rows=["4000\t2000\ttap\t0.4", "30000\t2000\tflash\t0.5",
+                                         "70000\t2000\ttap\t0.6"], words=("milliseconds", "divide")),
+    "infinite_onset": dict(rows=["inf\t2\ttap\t0.4"], words=("row 1", "'onset'")),
+    "binary_file": dict(text=bytes(range(256)) * 4, words=("not UTF-8",)),
     "bold_3d": dict(bold={"shape": SHAPE}, words=("bold.nii.gz",), file="bold.nii.gz"),
+    "bold_not_an_image": dict(bold_bytes=lambda b: b"not an image", words=("bold.nii.gz", "NIfTI"),
+                              file="bold.nii.gz"),
+    "bold_header_cut": dict(bold_bytes=lambda b: b[:200], words=("bold.nii.gz", "NIfTI"), file="bold.nii.gz"),
+    "bids_sidecar_json_syntax": dict(sidecar='{"RepetitionTime": 2.0,', words=("bold.json", "line 1"),
+                                     file="bold.json"),
+    "bids_sidecar_tr_text": dict(sidecar='{"RepetitionTime": "2"}', words=("bold.json", "RepetitionTime"),
+                                 file="bold.json"),
+    "bids_sidecar_tr_negative": dict(sidecar='{"RepetitionTime": -2}', words=("bold.json", "positive"),
+                                     file="bold.json"),
+    "bids_sidecar_not_an_object": dict(sidecar="[1, 2]", words=("bold.json", "JSON object"), file="bold.json"),
     "tr_differs_from_config": dict(bold={"tr_s": 2.5}, words=("bold.nii.gz", "acquisition.repetition_time_s"),
                                    file="bold.nii.gz"),
     "latin1_bytes": dict(text=EVENTS_HEADER.encode() + b"\n4\t10\tcaf\xe9\t0.4\n",
@@ -355,6 +382,13 @@ def test_events_duplicated_rows_kept_on_request_with_a_warning(tmp_path: Path, p
     assert_accepted_with_warning(outcome, "summary", "row")
     kept = pd.read_csv(outcome.outputs["events"], sep="\t")
     assert len(kept) == len(EVENTS_ROWS) + (policy == "keep_all")
+
+
+def test_events_past_the_scan_end_are_clipped_with_a_warning(tmp_path: Path) -> None:
+    outcome = events_case(tmp_path, rows=["4\t10\ttap\t0.4", "70\t1e308\tflash\t0.6"])
+    assert_accepted_with_warning(outcome, "summary", "extend past the end of the scan", "clipped")
+    clean = pd.read_csv(outcome.outputs["events"], sep="\t")
+    assert clean["duration"].tolist() == [10.0, 10.0]  # 80 s scan end - 70 s onset
 
 
 def test_events_negative_onset_is_modelled(tmp_path: Path) -> None:
@@ -409,6 +443,12 @@ CONFOUNDS_ERRORS: dict[str, dict[str, Any]] = {
     "empty_file": dict(text=b"", words=("empty",)),
     "comma_delimited": dict(text=("move_x,move_y,move_z,displacement_mm\n"
                                   + "0.1,0.2,0.1,0.1\n" * N_VOLUMES).encode(), words=("3 commas", "tab")),
+    "repeated_column": dict(text=("move_x\tmove_y\tmove_x\tdisplacement_mm\n"
+                                  + "0.1\t0.2\t0.1\t0.1\n" * N_VOLUMES).encode(), words=("['move_x']",)),
+    "row_with_a_cell_too_many": dict(text=("move_x\tmove_y\tmove_z\tdisplacement_mm\n"
+                                           + "0.1\t0.2\t0.1\t0.1\n" * 5 + "0.1\t0.2\t0.1\t0.1\t9\n"
+                                           + "0.1\t0.2\t0.1\t0.1\n" * (N_VOLUMES - 6)).encode(),
+                                     words=("data row 6", "5 tab-separated cells")),
     "non_numeric_value": dict(text=("move_x\tmove_y\tmove_z\tdisplacement_mm\n"
                                     + "".join(f"0.1\t{'big' if i == 5 else '0.2'}\t0.1\t0.1\n"
                                               for i in range(N_VOLUMES))).encode(),
@@ -427,10 +467,12 @@ def test_confounds_user_errors(tmp_path: Path, name: str) -> None:
 # --------------------------------------------------------------------------- BOLD and mask (fit)
 
 def fit_case(tmp: Path, chain: Path, *, bold: dict[str, Any] | None = None, mask: dict[str, Any] | None = None,
-             params: dict[str, Any] | None = None) -> Outcome:
+             params: dict[str, Any] | None = None, bold_bytes: Callable[[bytes], bytes] | None = None) -> Outcome:
     raw = tmp / "raw"
     raw.mkdir(exist_ok=True)
-    write_bold(raw / "bold.nii.gz", **(bold or {}))
+    bold_path = write_bold(raw / "bold.nii.gz", **(bold or {}))
+    if bold_bytes is not None:
+        bold_path.write_bytes(bold_bytes(bold_path.read_bytes()))
     write_mask(raw / "mask.nii.gz", **(mask or {}))
     for name in ("design.tsv", "design.json"):
         shutil.copy(chain / "run" / name, raw / name)
@@ -443,6 +485,8 @@ FIT_ERRORS: dict[str, dict[str, Any]] = {
     "mask_affine_differs": dict(mask={"affine": np.diag([2.0, 2.0, 2.0, 1.0])}, words=("mask.nii.gz",)),
     "mask_all_zero": dict(mask={"fill": 0}, words=("mask.nii.gz",)),
     "bold_3d": dict(bold={"shape": SHAPE}, words=("bold.nii.gz",)),
+    "bold_data_truncated": dict(bold_bytes=lambda b: b[: len(b) // 2], words=("bold.nii.gz", "truncated")),
+    "bold_not_an_image": dict(bold_bytes=lambda b: b"not an image", words=("bold.nii.gz", "NIfTI")),
     "bold_fewer_volumes_than_design": dict(bold={"shape": SHAPE + (N_VOLUMES - 5,)}, words=("bold.nii.gz",)),
     "non_finite_voxel": dict(bold={"nan_voxel": True}, words=("bold.nii.gz", "fit.non_finite_voxels"),
                              fix={"fit.non_finite_voxels": "drop"}),
