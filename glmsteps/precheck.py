@@ -204,6 +204,8 @@ def check_contrast_keys(events_paths: Sequence[str | os.PathLike[str]], conditio
     ContrastError
         A key names no condition found and no design column: one line naming
         the contrast, the key and the conditions found.
+    ConfigError
+        ``events.modulators`` names a condition that no events file has.
     EventsError
         An events file without the condition column.
     """
@@ -213,6 +215,13 @@ def check_contrast_keys(events_paths: Sequence[str | os.PathLike[str]], conditio
     found = set().union(*by_file.values())
     modelled = set(conditions) & found if conditions else found
     mods = modulators or {}
+    listed = f"conditions in the {len(by_file)} events files (column '{condition_column}'): {sorted(found)}"
+    for condition in sorted(map(str, mods)):
+        if condition not in found:
+            # a misspelt condition would otherwise leave its modulator silently out of the model
+            raise ConfigError(f"config events.modulators.{condition}: no events file has condition "
+                              f"'{condition}', so its modulators would model nothing; fix the condition name; "
+                              f"{listed}")
     suffixes = MODEL_SUFFIXES.get(hrf, ())
     column_condition: dict[str, str] = {}
     for c in modelled:
@@ -220,7 +229,6 @@ def check_contrast_keys(events_paths: Sequence[str | os.PathLike[str]], conditio
         column_condition.update({f"{c}{BASIS_SEPARATOR}{s}": c for s in extra})
         if hrf != "fir":
             column_condition.update({f"{c}{MODULATOR_INFIX}{m}": c for m in mods.get(c, ())})
-    listed = f"conditions in the {len(by_file)} events files (column '{condition_column}'): {sorted(found)}"
     needed: dict[str, set[str]] = {}
     for name, spec in contrasts.items():
         needed[name] = set()

@@ -61,8 +61,8 @@ _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_]*$")
 
 def _check_names(kind, names):
     for name in names:
-        if not _NAME.match(name):
-            _config_error(f"{kind} name {name!r} must be letters, digits and underscores, starting with a letter or digit")
+        if not isinstance(name, str) or not _NAME.match(name):
+            _config_error(f"{kind} name {name!r} must be letters, digits and underscores, starting with a letter or digit (quote a number in YAML)")
 
 
 def discovered_runs():

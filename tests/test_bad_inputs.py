@@ -677,6 +677,10 @@ DRY_RUN_ERRORS: dict[str, dict[str, Any]] = {
     "output_dir_is_root": dict(edit={"output_dir": "ROOT"}, words=("output_dir", "inputs.root")),
     "zero_weight_f_row": dict(edit={"contrasts.any_task.rows": [{"tap": 1}, {"flash": 0}]},
                               words=("config contrasts.any_task.rows[1]", "non-zero weight")),
+    "numeric_contrast_name": dict(edit={"contrasts.1": {"weights": {"tap": 1}}}, words=("contrast name 1",
+                                                                                         "quote a number")),
+    "modulator_of_an_unknown_condition": dict(edit={"events.modulators": {"tapp": ["rt"]}},
+                                              words=("config events.modulators.tapp", "fix the condition name")),
     "empty_contrasts": dict(edit={"contrasts": {}}, words=("contrasts",)),
     "unknown_condition_in_contrast": dict(edit={"contrasts.typo": {"weights": {"tapp": 1}}},
                                           words=("contrast 'typo'", "'tapp'")),
@@ -694,6 +698,8 @@ def test_config_errors_stop_a_dry_run_in_one_line(tmp_path: Path, tiny_study: Pa
     config["group_models"]["everyone"].pop("permutation")
     for dotted, value in case["edit"].items():
         set_key(config, dotted, str(tiny_study) if value == "ROOT" else value)
+    if "1" in config["contrasts"]:
+        config["contrasts"][1] = config["contrasts"].pop("1")  # YAML writes it as the number 1
     before = files_under(tiny_study)
     proc = ws.snakemake("-n", "--cores", "1", config=config, check=False)
     assert proc.returncode != 0
