@@ -28,8 +28,9 @@ A contrast key may be (see :mod:`glmsteps.contrasts`):
 become folder names (contrasts, thresholds, group models and their contrasts:
 at most :data:`MAX_NAME_LENGTH` characters of letters, digits and underscores)
 and refuse an ``output_dir`` that is, holds or lies inside ``inputs.root``;
-:func:`check_contrast_weights` refuses a contrast row of zero weights;
-:func:`check_config_start` runs all three.
+:func:`check_contrast_weights` refuses a contrast row of zero weights and
+:func:`check_group_contrast_keys` a group contrast key that can be no column
+of its group design; :func:`check_config_start` runs them all.
 
 This module reads files but does no maths; it imports neither snakemake nor
 numpy, pandas or scipy (the Snakefile imports it at every start).
@@ -394,10 +395,70 @@ def check_contrast_weights(contrasts: Mapping[str, Mapping[str, Any]]) -> None:
                                   "nothing; give at least one non-zero weight or delete it")
 
 
+def group_design_columns(spec: Mapping[str, Any]) -> tuple[list[str], list[str]]:
+    """The columns a group model's design can have, as group contrast keys name them.
+
+    Parameters
+    ----------
+    spec : mapping
+        One ``group_models`` entry (defaults filled in).
+
+    Returns
+    -------
+    exact : list of str
+        Column names known without the participants table: ``mean`` (one_sample,
+        regression) and the covariates (a numeric covariate keeps its name).
+    prefixes : list of str
+        Columns whose indicators are ``<column>[<level>]``: the group column
+        (two_sample, paired), the pair column (paired), the covariates (a text
+        covariate) and the site column when ``site_as_covariate``. The levels
+        come from participants.tsv and are checked by the group step.
+
+    Notes
+    -----
+    The coding is :mod:`glmsteps.group`'s (its module docstring, "Design coding").
+    """
+    design = spec.get("design")
+    covariates = [str(c) for c in spec.get("covariates") or []]
+    exact = (["mean"] if design in ("one_sample", "regression") else []) + covariates
+    prefixes = list(covariates)
+    if design in ("two_sample", "paired"):
+        prefixes.append(str(spec.get("group_column", "group")))
+    if design == "paired":
+        prefixes.append(str(spec.get("pair_column", "pair")))
+    if spec.get("site_column") and spec.get("site_as_covariate", True):
+        prefixes.append(str(spec["site_column"]))
+    return exact, prefixes
+
+
+def check_group_contrast_keys(group_models: Mapping[str, Mapping[str, Any]]) -> None:
+    """Check that every group contrast key can be a column of its model's design (see
+    :func:`group_design_columns`), so that a typo stops the workflow before the first-level work.
+
+    Raises
+    ------
+    ConfigError
+        One line naming the key, the design's possible columns and the fix.
+    """
+    for model, spec in group_models.items():
+        exact, prefixes = group_design_columns(spec)
+        for name, weights in (spec.get("group_contrasts") or {}).items():
+            for key in map(str, weights or {}):
+                head, bracket, rest = key.partition("[")
+                if key in exact or (bracket and rest.endswith("]") and head in prefixes):
+                    continue
+                possible = exact + [f"{p}[<level>]" for p in prefixes]
+                raise ConfigError(f"config group_models.{model}.group_contrasts.{name}: key {key!r} names no column "
+                                  f"of the {spec.get('design')} group design (its columns: "
+                                  f"{', '.join(possible) or 'none'}; levels as in participants.tsv); fix the key, or "
+                                  f"add the column to group_models.{model}.covariates")
+
+
 def check_config_start(config: Mapping[str, Any], workdir: str | os.PathLike[str] = ".") -> None:
     """The config checks made when the workflow starts, before any job and before the DAG is built.
 
-    :func:`check_config_names`, :func:`check_contrast_weights`, then :func:`check_output_dir`.
+    :func:`check_config_names`, :func:`check_contrast_weights`, :func:`check_group_contrast_keys`, then
+    :func:`check_output_dir`.
 
     Raises
     ------
@@ -405,4 +466,5 @@ def check_config_start(config: Mapping[str, Any], workdir: str | os.PathLike[str
     """
     check_config_names(config)
     check_contrast_weights(config["contrasts"])
+    check_group_contrast_keys(config.get("group_models") or {})
     check_output_dir(config["output_dir"], config["inputs"]["root"], workdir)

@@ -757,3 +757,45 @@ def test_load_config_keeps_a_merged_key_s_override(tmp_path: Path) -> None:
     path.write_text("base: &b {q: 0.05, method: fdr}\nthresholds:\n  group:\n    strict:\n      <<: *b\n"
                     "      q: 0.01\n")
     assert load_config(path)["thresholds"]["group"]["strict"] == {"q": 0.01, "method": "fdr"}
+
+
+# --------------------------------------------------------------------------- group contrasts at the start
+
+@pytest.mark.parametrize("design, extra", [
+    ("one_sample", {}), ("regression", {"covariates": ["age", "sex"]}),
+    ("two_sample", {"group_column": "group", "covariates": ["age"]}),
+    ("paired", {"group_column": "group", "pair_column": "pair"}),
+])
+def test_group_contrast_key_rule_accepts_every_column_the_group_design_makes(design: str, extra: dict) -> None:
+    # reference: the group step's own design coder (glmsteps.group.build_group_design)
+    from glmsteps.group import build_group_design
+    from glmsteps.precheck import group_design_columns
+
+    table = pd.DataFrame({"age": [20.0, 31, 44, 50, 25, 38, 61, 29, 47, 33, 55, 42], "sex": list("mffmfmmffmmf"),
+                          "site": list("aabbccaabbcc"), "group": ["ctl", "pat"] * 6,
+                          "pair": [f"p{i // 2}" for i in range(12)]}, index=[f"{i:02d}" for i in range(1, 13)])
+    spec = {"design": design, "site_column": "site", "site_as_covariate": design != "paired", **extra}
+    names = build_group_design(table, design, group_column=extra.get("group_column"),
+                               pair_column=extra.get("pair_column"), covariates=extra.get("covariates", ()),
+                               site_column=spec["site_column"] if spec["site_as_covariate"] else None,
+                               site_as_covariate=spec["site_as_covariate"]).names
+    exact, prefixes = group_design_columns(spec)
+    for name in names:
+        assert name in exact or name.partition("[")[0] in prefixes, name
+
+
+@pytest.mark.parametrize("model, weights, words", [
+    ({"design": "one_sample"}, {"age": 1}, ("'age'", "one_sample", "covariates")),
+    ({"design": "two_sample", "group_column": "group"}, {"mean": 1}, ("'mean'", "group[<level>]")),
+    ({"design": "regression", "covariates": ["age"]}, {"agee": 1}, ("'agee'", "mean, age")),
+    ({"design": "one_sample", "site_column": None}, {"site[b]": 1}, ("'site[b]'",)),
+])
+def test_group_contrast_key_that_names_no_design_column_stops_the_start(model: dict, weights: dict,
+                                                                       words: tuple[str, ...]) -> None:
+    config = validated_config(**{"group_models.m": {**model, "group_contrasts": {"g": weights}}})
+    with pytest.raises(ConfigError) as info:
+        check_config_start(config)
+    message = str(info.value)
+    assert "\n" not in message and "config group_models.m.group_contrasts.g" in message
+    for word in words:
+        assert word in message, (word, message)
