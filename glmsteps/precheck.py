@@ -454,8 +454,14 @@ def check_group_contrast_keys(group_models: Mapping[str, Mapping[str, Any]]) -> 
                                   f"add the column to group_models.{model}.covariates")
 
 
-def check_config_start(config: Mapping[str, Any], workdir: str | os.PathLike[str] = ".") -> None:
+def check_config_start(config: Mapping[str, Any], workdir: str | os.PathLike[str] = ".",
+                       config_files: Sequence[str | os.PathLike[str]] = ()) -> None:
     """The config checks made when the workflow starts, before any job and before the DAG is built.
+
+    The config files (Snakemake's ``--configfile``, already read by Snakemake) are
+    read again with :func:`glmsteps.configfile.load_config`, which refuses a key
+    given twice in one mapping: Snakemake's reader keeps the last one silently
+    (a contrast or a setting replaced without a word).
 
     :func:`check_config_names`, :func:`check_contrast_weights`, :func:`check_group_contrast_keys`, then
     :func:`check_output_dir`.
@@ -464,6 +470,10 @@ def check_config_start(config: Mapping[str, Any], workdir: str | os.PathLike[str
     ------
     ConfigError
     """
+    from .configfile import load_config
+
+    for path in config_files:
+        load_config(path)
     check_config_names(config)
     check_contrast_weights(config["contrasts"])
     check_group_contrast_keys(config.get("group_models") or {})

@@ -114,7 +114,7 @@ if workflow.is_main_process:
     # contrast keys against the conditions of the events files, before any job (reads only the condition
     # column of each events TSV; cluster jobs re-parsing this file skip it)
     try:
-        check_config_start(config)  # folder names within limits; output_dir apart from inputs.root
+        check_config_start(config, config_files=workflow.configfiles)  # names, output_dir, repeated keys
         check_config_contrasts(config, events_files_of_runs())
     except GlmstepsError as _exc:
         sys.stderr.write(f"glmsteps: {type(_exc).__name__}: {_exc}\n")

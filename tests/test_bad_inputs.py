@@ -712,6 +712,21 @@ def test_config_errors_stop_a_dry_run_in_one_line(tmp_path: Path, tiny_study: Pa
     assert not ws.results.exists() or [p for p in ws.results.rglob("*") if p.is_file()] == []
 
 
+@pytest.mark.slow
+def test_a_key_given_twice_in_the_config_file_stops_a_dry_run(tmp_path: Path, tiny_study: Path) -> None:
+    # Snakemake's own reader keeps the last of two equal keys; the start check reads the file again
+    ws = make_workspace(tmp_path / "work", tiny_study)
+    text = ws.config_path.read_text()
+    assert text.count("\noutput_dir:") == 1
+    ws.config_path.write_text(text + "output_dir: other_results\n")
+    proc = ws.snakemake("-n", "--cores", "1", check=False)
+    assert proc.returncode != 0 and "Traceback" not in proc.stderr
+    ours = [line for line in proc.stderr.splitlines() if line.startswith("glmsteps: ")]
+    assert len(ours) == 1, proc.stderr[-3000:]
+    assert str(ws.config_path) in ours[0] and "key 'output_dir' is given twice" in ours[0]
+    assert not (ws.workdir / "other_results").exists() and not ws.results.exists()
+
+
 # --------------------------------------------------------------------------- config files (load_config)
 
 YAML_ERRORS: dict[str, tuple[str, str, tuple[str, ...]]] = {
