@@ -551,7 +551,7 @@ def test_f_contrast_with_dependent_rows_tests_their_rank(tmp_path: Path, chain: 
 
 # --------------------------------------------------------------------------- participants (group step)
 
-def group_case(tmp: Path, participants: str, site_column: str | None = "site") -> Outcome:
+def group_case(tmp: Path, participants: str | bytes, site_column: str | None = "site") -> Outcome:
     """Four subjects' combined effect and variance maps; the participants table as given."""
     rng = np.random.default_rng(7)
     raw = tmp / "raw"
@@ -566,7 +566,8 @@ def group_case(tmp: Path, participants: str, site_column: str | None = "site") -
                 "level": "subject", "subject": s, "session": None, "task": "demo", "run": None,
                 "contrast": "tap", "stat": stat}}))
             into.append(str(path))
-    (raw / "participants.tsv").write_text(participants, encoding="utf-8")
+    path = raw / "participants.tsv"
+    path.write_bytes(participants if isinstance(participants, bytes) else participants.encode())
     params = {"design": "one_sample", "covariates": [], "site_column": site_column, "site_as_covariate": True,
               "estimation": "ols", "harmonise_sites": False, "mask_fraction": 1.0, "tail": "two-sided",
               "contrast": {"name": "mean", "weights": {"mean": 1}}}
@@ -599,6 +600,27 @@ def test_participants_missing_a_site_value_drops_it_with_a_warning(tmp_path: Pat
     assert outcome.code == 0, outcome.log
     assert any("04" in line for line in outcome.warnings), outcome.log
     assert_no_temporaries(outcome.results)
+
+
+PARTICIPANTS_ERRORS: dict[str, tuple[bytes, tuple[str, ...]]] = {
+    "empty_file": (b"", ("empty",)),
+    "comma_separated": (b"participant_id,site\nsub-01,a\nsub-02,a\nsub-03,b\nsub-04,b\n", ("1 commas", "tab")),
+    "row_with_a_cell_too_many": (b"participant_id\tsite\nsub-01\ta\nsub-02\ta\tx\nsub-03\tb\nsub-04\tb\n",
+                                 ("data row 2", "3 tab-separated cells")),
+    "repeated_column": (b"participant_id\tsite\tsite\nsub-01\ta\tb\nsub-02\ta\tb\nsub-03\tb\ta\n"
+                        b"sub-04\tb\ta\n", ("['site']", "more than once")),
+    "not_utf8": (b"participant_id\tsite\nsub-01\tZ\xfcrich\nsub-02\ta\nsub-03\tb\nsub-04\tb\n",
+                 ("not UTF-8", "0xfc")),
+    "subject_listed_twice": (b"participant_id\tsite\nsub-01\ta\nsub-01\tb\nsub-03\tb\nsub-04\tb\n",
+                             ("['01']", "more than once")),
+}
+
+
+@pytest.mark.parametrize("name", sorted(PARTICIPANTS_ERRORS))
+def test_participants_tables_that_cannot_be_read_are_one_line_errors(tmp_path: Path, name: str) -> None:
+    text, words = PARTICIPANTS_ERRORS[name]
+    line = assert_user_error(group_case(tmp_path, text), "participants.tsv", *words)
+    assert "GroupError" in line
 
 
 def test_participants_without_participant_id_is_an_error(tmp_path: Path) -> None:
