@@ -143,8 +143,9 @@ def write_bold(path: Path, shape: tuple[int, ...] = SHAPE + (N_VOLUMES,), tr_s: 
     return path
 
 
-def write_mask(path: Path, shape: tuple[int, ...] = SHAPE, fill: int = 1, affine: np.ndarray = AFFINE) -> Path:
-    nib.save(nib.Nifti1Image(np.full(shape, fill, np.uint8), affine), path)
+def write_mask(path: Path, shape: tuple[int, ...] = SHAPE, fill: float = 1, affine: np.ndarray = AFFINE) -> Path:
+    dtype = np.uint8 if float(fill).is_integer() else np.float32
+    nib.save(nib.Nifti1Image(np.full(shape, fill, dtype), affine), path)
     return path
 
 
@@ -510,6 +511,15 @@ def test_fit_drops_non_finite_voxels_on_request_and_says_so(tmp_path: Path, chai
     assert side["voxel_counts"]["non_finite"] == 1
     assert any("non-finite" in w or "NaN" in w for w in side["warnings"]), side["warnings"]
     assert any("non-finite" in line or "NaN" in line for line in outcome.warnings), outcome.log
+    assert_no_temporaries(outcome.results)
+
+
+def test_fit_with_a_probability_map_as_mask_warns(tmp_path: Path, chain: Path) -> None:
+    outcome = fit_case(tmp_path, chain, mask={"fill": 0.3})
+    assert outcome.code == 0, outcome.log
+    side = json.loads((outcome.results / "fit.json").read_text())
+    assert any("fractional values" in w and "binary mask" in w for w in side["warnings"]), side["warnings"]
+    assert any("fractional values" in line for line in outcome.warnings)
     assert_no_temporaries(outcome.results)
 
 
