@@ -454,6 +454,24 @@ def check_group_contrast_keys(group_models: Mapping[str, Mapping[str, Any]]) -> 
                                   f"add the column to group_models.{model}.covariates")
 
 
+def check_participants_file(config: Mapping[str, Any], workdir: str | os.PathLike[str] = ".") -> None:
+    """Refuse group models without the participants table they read (Snakemake would report a missing
+    input of every group job, in many lines).
+
+    Raises
+    ------
+    ConfigError
+        ``group_models`` is not empty and ``inputs.root``/``inputs.participants`` is no file.
+    """
+    models = sorted(config.get("group_models") or {})
+    inputs = config["inputs"]
+    path = os.path.join(workdir, inputs["root"], inputs["participants"])
+    if models and not os.path.isfile(path):
+        raise ConfigError(f"config inputs.participants: {os.path.normpath(path)} is not a file, and the group "
+                          f"models ({', '.join(models)}) read it; set inputs.participants to the participants "
+                          "table (relative to inputs.root), or remove the group models")
+
+
 def check_config_start(config: Mapping[str, Any], workdir: str | os.PathLike[str] = ".",
                        config_files: Sequence[str | os.PathLike[str]] = ()) -> None:
     """The config checks made when the workflow starts, before any job and before the DAG is built.
@@ -463,8 +481,8 @@ def check_config_start(config: Mapping[str, Any], workdir: str | os.PathLike[str
     given twice in one mapping: Snakemake's reader keeps the last one silently
     (a contrast or a setting replaced without a word).
 
-    :func:`check_config_names`, :func:`check_contrast_weights`, :func:`check_group_contrast_keys`, then
-    :func:`check_output_dir`.
+    :func:`check_config_names`, :func:`check_contrast_weights`, :func:`check_group_contrast_keys`,
+    :func:`check_participants_file`, then :func:`check_output_dir`.
 
     Raises
     ------
@@ -477,4 +495,5 @@ def check_config_start(config: Mapping[str, Any], workdir: str | os.PathLike[str
     check_config_names(config)
     check_contrast_weights(config["contrasts"])
     check_group_contrast_keys(config.get("group_models") or {})
+    check_participants_file(config, workdir)
     check_output_dir(config["output_dir"], config["inputs"]["root"], workdir)

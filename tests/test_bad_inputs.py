@@ -640,14 +640,30 @@ def test_participants_without_participant_id_is_an_error(tmp_path: Path) -> None
 
 # --------------------------------------------------------------------------- config: workflow-start checks
 
-def test_long_contrast_name_is_a_config_error_naming_key_and_limit() -> None:
+def study_folder(tmp: Path) -> Path:
+    """A working folder whose data/ holds the participants table the toy config's group model reads."""
+    (tmp / "data").mkdir(parents=True, exist_ok=True)
+    (tmp / "data" / "participants.tsv").write_text("participant_id\tsite\nsub-01\ta\n")
+    return tmp
+
+
+def test_long_contrast_name_is_a_config_error_naming_key_and_limit(tmp_path: Path) -> None:
     name = "tap_" + "x" * (MAX_NAME_LENGTH - 3)
     config = validated_config(**{f"contrasts.{name}": {"weights": {"tap": 1}}})
     with pytest.raises(ConfigError) as info:
-        check_config_start(config)
+        check_config_start(config, study_folder(tmp_path))
     message = str(info.value)
     assert "\n" not in message and "config contrasts" in message and f"at most {MAX_NAME_LENGTH}" in message
-    check_config_start(validated_config(**{f"contrasts.{name[:MAX_NAME_LENGTH]}": {"weights": {"tap": 1}}}))
+    check_config_start(validated_config(**{f"contrasts.{name[:MAX_NAME_LENGTH]}": {"weights": {"tap": 1}}}),
+                       tmp_path)
+
+
+def test_participants_table_missing_while_group_models_need_it(tmp_path: Path) -> None:
+    with pytest.raises(ConfigError) as info:
+        check_config_start(validated_config(), tmp_path)
+    message = str(info.value)
+    assert "\n" not in message and "config inputs.participants" in message and "participants.tsv" in message
+    check_config_start(validated_config(group_models={}), tmp_path)  # no group model: no table needed
 
 
 @pytest.mark.parametrize("key", ["contrasts", "thresholds.group", "group_models",
@@ -666,8 +682,7 @@ def test_unsafe_folder_names_are_config_errors(key: str, name: str) -> None:
 
 @pytest.mark.parametrize("where", ["same", "inside", "holding"])
 def test_output_dir_among_the_inputs_is_refused(tmp_path: Path, where: str) -> None:
-    root = tmp_path / "data"
-    root.mkdir()
+    study_folder(tmp_path)
     out = {"same": "data", "inside": "data/derivatives/glm", "holding": "."}[where]
     config = validated_config(**{"inputs.root": "data", "output_dir": out})
     with pytest.raises(ConfigError) as info:
@@ -713,6 +728,8 @@ DRY_RUN_ERRORS: dict[str, dict[str, Any]] = {
                                                                                          "quote a number")),
     "modulator_of_an_unknown_condition": dict(edit={"events.modulators": {"tapp": ["rt"]}},
                                               words=("config events.modulators.tapp", "fix the condition name")),
+    "participants_file_missing": dict(edit={"inputs.participants": "nope.tsv"},
+                                      words=("config inputs.participants", "nope.tsv", "everyone")),
     "empty_contrasts": dict(edit={"contrasts": {}}, words=("contrasts",)),
     "unknown_condition_in_contrast": dict(edit={"contrasts.typo": {"weights": {"tapp": 1}}},
                                           words=("contrast 'typo'", "'tapp'")),
