@@ -633,6 +633,20 @@ def test_participants_tables_that_cannot_be_read_are_one_line_errors(tmp_path: P
     assert "GroupError" in line
 
 
+@pytest.mark.parametrize("name", ["not_utf8", "row_with_a_cell_too_many"])
+def test_the_report_reads_participants_with_the_same_checks(tmp_path: Path, name: str) -> None:
+    from glmsteps.errors import GroupError
+    from glmsteps.report.collect import read_sites
+
+    path = tmp_path / "participants.tsv"
+    path.write_bytes(PARTICIPANTS_ERRORS[name][0])
+    with pytest.raises(GroupError) as info:
+        read_sites(str(path), "site")
+    assert "\n" not in str(info.value) and str(path) in str(info.value)
+    for word in PARTICIPANTS_ERRORS[name][1]:
+        assert word in str(info.value)
+
+
 def test_participants_without_participant_id_is_an_error(tmp_path: Path) -> None:
     table = "subject\tsite\nsub-01\ta\nsub-02\ta\nsub-03\tb\nsub-04\tb\n"
     assert_user_error(group_case(tmp_path, table), "participants.tsv", "participant_id")
