@@ -41,7 +41,7 @@ import pandas as pd
 from . import group as gm
 from . import stats
 from .errors import GlmstepsWarning, GroupError
-from .fileio import read_json, read_tsv
+from .fileio import read_json, read_user_tsv
 from .harmonise import harmonise_site_effects, harmonise_variances
 from .maps import load_map
 from .provenance import sidecar_path
@@ -245,10 +245,7 @@ def _maps_by_subject(paths: Sequence[str], kind: str) -> dict[str, SubjectMap]:
 
 def read_participants(path: str, columns: Sequence[str]) -> pd.DataFrame:
     """participants.tsv indexed by subject label (without ``sub-``), checking the needed columns."""
-    try:
-        table = read_tsv(path)
-    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
-        raise GroupError(f"{path}: cannot read participants table ({exc}); give a tab-separated file") from exc
+    table = read_user_tsv(path, GroupError, "save it as a BIDS participants table")
     if "participant_id" not in table.columns:
         raise GroupError(f"{path}: no participant_id column (found {list(table.columns)}); add the BIDS column")
     ids = table["participant_id"].astype(str).map(normalise_subject)
@@ -353,7 +350,12 @@ def load_group_data(inputs: Mapping[str, Any], params: Mapping[str, Any],
         if settings["harmonise_sites"]:
             raise GroupError(f"{participants}: site column {site_column!r} is absent; add it or set "
                              "harmonise_sites: false")
-        warnings.warn(f"{participants}: no site column {site_column!r}; site is not modelled "
+        if settings["site_as_covariate"]:
+            # modelling site without its column would silently fit another model than the config asks for
+            raise GroupError(f"{participants}: site column {site_column!r} is absent, so site cannot be modelled "
+                             "(site_as_covariate); add the column, or set site_column: null for a single-site "
+                             "study")
+        warnings.warn(f"{participants}: no site column {site_column!r}; the site QC treats the study as one site "
                       "(add the column, or set site_column: null for a single-site study)",
                       GlmstepsWarning, stacklevel=2)
         site_column = None

@@ -17,7 +17,7 @@ from snakemake.utils import validate
 from glmsteps.bids import RunKey, check_pattern, discover_runs, parse_run_id
 from glmsteps.errors import ConfigError, GlmstepsError
 from glmsteps.launch import command_template, start_server
-from glmsteps.precheck import check_config_contrasts
+from glmsteps.precheck import check_config_contrasts, check_config_start
 from glmsteps.renames import check_renamed
 from glmsteps.report.summary import print_run_summary
 from glmsteps.volumes import bids_sidecar_of
@@ -61,8 +61,8 @@ _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_]*$")
 
 def _check_names(kind, names):
     for name in names:
-        if not _NAME.match(name):
-            _config_error(f"{kind} name {name!r} must be letters, digits and underscores, starting with a letter or digit")
+        if not isinstance(name, str) or not _NAME.match(name):
+            _config_error(f"{kind} name {name!r} must be letters, digits and underscores, starting with a letter or digit (quote a number in YAML)")
 
 
 def discovered_runs():
@@ -114,6 +114,7 @@ if workflow.is_main_process:
     # contrast keys against the conditions of the events files, before any job (reads only the condition
     # column of each events TSV; cluster jobs re-parsing this file skip it)
     try:
+        check_config_start(config, config_files=workflow.configfiles)  # names, output_dir, repeated keys
         check_config_contrasts(config, events_files_of_runs())
     except GlmstepsError as _exc:
         sys.stderr.write(f"glmsteps: {type(_exc).__name__}: {_exc}\n")

@@ -20,7 +20,7 @@ ROOT = Path(__file__).resolve().parents[1]
 SCHEMA = yaml.safe_load((ROOT / "config" / "schema.yaml").read_text())
 MODULES = ["glmsteps/events.py", "glmsteps/confounds.py", "glmsteps/design.py", "glmsteps/hrf.py",
            "glmsteps/bids.py", "glmsteps/volumes.py", "glmsteps/acquisition.py", "glmsteps/renames.py",
-           "glmsteps/precheck.py", "glmsteps/jobs/events.py", "glmsteps/jobs/confounds.py",
+           "glmsteps/precheck.py", "glmsteps/configfile.py", "glmsteps/jobs/events.py", "glmsteps/jobs/confounds.py",
            "glmsteps/jobs/design.py", "glmsteps/plots/confounds.py"]
 SECTIONS = ("inputs", "acquisition", "events", "confounds", "design", "fit", "contrasts", "contrast_options",
             "thresholds", "group_models")

@@ -404,8 +404,9 @@ def test_error_and_warning_hints_name_settings_the_schema_accepts(tmp_path: Path
     write_tsv(no_site["participants"], table)
     group_job.run(no_site, outputs_in(tmp_path / "g1"), one_sample(), {**WILDCARDS, "group_contrast": "mean"})
     hints += json.loads((tmp_path / "g1" / "t.json").read_text())["warnings"]      # warnings, as recorded
-    for params, data in ((one_sample(harmonise_sites=True), no_site), (one_sample(harmonise_sites=True,
-                                                                                  site_column=None), inputs)):
+    for params, data in (({**one_sample(), "site_as_covariate": True}, no_site),
+                         (one_sample(harmonise_sites=True), no_site),
+                         (one_sample(harmonise_sites=True, site_column=None), inputs)):
         with pytest.raises(GroupError) as info:
             group_job.run(data, outputs_in(tmp_path / "g2"), params, {**WILDCARDS, "group_contrast": "mean"})
         hints.append(str(info.value))

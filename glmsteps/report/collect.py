@@ -287,9 +287,10 @@ def read_sites(participants: str, column: str) -> tuple[dict[str, str], str]:
     """Subject label -> site from the participants table, and a note when there is none."""
     if not participants or not os.path.isfile(participants):
         return {}, "no participants table: all runs count as one site"
-    from ..fileio import read_tsv
+    from ..errors import GroupError
+    from ..fileio import read_user_tsv
 
-    table = read_tsv(participants)
+    table = read_user_tsv(participants, GroupError, "save it as a BIDS participants table")
     if "participant_id" not in table.columns or column not in table.columns:
         return {}, (f"{participants}: no column {column!r} (config report.site_column): all runs count as one site")
     sites = {}
