@@ -348,7 +348,11 @@ def check_output_dir(output_dir: str | os.PathLike[str], root: str | os.PathLike
     """Refuse an output folder that is the input root, lies inside it or holds it.
 
     Outputs written among the inputs could be taken for inputs by a later run's
-    discovery, and clearing the results would delete the data.
+    discovery, and clearing the results would delete the data. One place inside
+    the root is allowed: its ``derivatives`` folder (``<root>/derivatives/<name>``),
+    where BIDS puts the outputs of processing (common practice); run discovery
+    reads only the files the input patterns name, so results there stay apart
+    from the inputs unless a pattern points into the same folder.
 
     Parameters
     ----------
@@ -367,13 +371,16 @@ def check_output_dir(output_dir: str | os.PathLike[str], root: str | os.PathLike
     if out == data:
         how = "is the input folder inputs.root"
     elif out.startswith(data.rstrip(os.sep) + os.sep):
-        how = "lies inside the input folder inputs.root"
+        inside = os.path.relpath(out, data).split(os.sep)
+        if inside[0] == "derivatives" and len(inside) > 1:
+            return
+        how = "lies inside the input folder inputs.root (only its derivatives/<name> folder may hold results)"
     elif data.startswith(out.rstrip(os.sep) + os.sep):
         how = "holds the input folder inputs.root"
     else:
         return
     raise ConfigError(f"config output_dir {os.fspath(output_dir)!r} ({out}) {how} ({data}); set output_dir to a "
-                      "folder outside the data, e.g. results")
+                      "folder outside the data, e.g. results, or in the data's derivatives folder")
 
 
 def check_contrast_weights(contrasts: Mapping[str, Mapping[str, Any]]) -> None:

@@ -694,10 +694,11 @@ def test_unsafe_folder_names_are_config_errors(key: str, name: str) -> None:
     assert "\n" not in str(info.value) and f"config {key}" in str(info.value) and "rename it" in str(info.value)
 
 
-@pytest.mark.parametrize("where", ["same", "inside", "holding"])
+@pytest.mark.parametrize("where", ["same", "inside", "derivatives_itself", "holding"])
 def test_output_dir_among_the_inputs_is_refused(tmp_path: Path, where: str) -> None:
     study_folder(tmp_path)
-    out = {"same": "data", "inside": "data/derivatives/glm", "holding": "."}[where]
+    out = {"same": "data", "inside": "data/sub-01/glm", "derivatives_itself": "data/derivatives",
+           "holding": "."}[where]
     config = validated_config(**{"inputs.root": "data", "output_dir": out})
     with pytest.raises(ConfigError) as info:
         check_config_start(config, tmp_path)
@@ -705,6 +706,8 @@ def test_output_dir_among_the_inputs_is_refused(tmp_path: Path, where: str) -> N
     assert "\n" not in message and "config output_dir" in message and "inputs.root" in message
     assert schema_accepts(output_dir="results")
     check_config_start(validated_config(**{"inputs.root": "data", "output_dir": "results"}), tmp_path)
+    # the BIDS place for processed data, <root>/derivatives/<name>, is allowed (common practice)
+    check_config_start(validated_config(**{"inputs.root": "data", "output_dir": "data/derivatives/glm"}), tmp_path)
 
 
 # --------------------------------------------------------------------------- config: Snakemake dry runs
