@@ -56,23 +56,24 @@ def workflow_dir() -> Path:
                         "reinstall it from a wheel or a clone (pip install glmsteps)")
 
 
-def _option_values(args: Sequence[str], matches: Callable[[str], bool]) -> list[tuple[int, str]]:
-    """(index, value) of every value given to a long option for which ``matches(name)`` holds.
+def _option_values(args: Sequence[str], matches: Callable[[str], bool]) -> list[list[tuple[int, str]]]:
+    """Each occurrence of a long option for which ``matches(name)`` holds: its (index, value) pairs.
 
     Handles ``--opt=value`` and ``--opt v1 v2 ...`` (values up to the next argument that
     starts with ``-``), as Snakemake's parser reads them.
     """
-    found: list[tuple[int, str]] = []
+    found: list[list[tuple[int, str]]] = []
     i = 0
     while i < len(args):
         name, eq, value = args[i].partition("=")
         if name.startswith("--") and matches(name):
             if eq:
-                found.append((i, value))
+                found.append([(i, value)])
             else:
+                found.append([])
                 i += 1
                 while i < len(args) and not args[i].startswith("-"):
-                    found.append((i, args[i]))
+                    found[-1].append((i, args[i]))
                     i += 1
                 continue
         i += 1
@@ -80,19 +81,22 @@ def _option_values(args: Sequence[str], matches: Callable[[str], bool]) -> list[
 
 
 def _is_configfile_option(name: str) -> bool:
-    """``--configfile``, ``--configfiles`` or an abbreviation longer than ``--config`` (another option)."""
-    return any(full.startswith(name) for full in _CONFIGFILE_OPTIONS) and len(name) > len("--config")
+    """``--configfile`` or ``--configfiles`` (Snakemake's parser refuses the ambiguous abbreviations)."""
+    return name in _CONFIGFILE_OPTIONS
 
 
 def config_files_in(args: Sequence[str]) -> list[str]:
-    """The config files named among Snakemake arguments (``--configfile`` / ``--configfiles``).
+    """The config files Snakemake will read from its arguments (``--configfile`` / ``--configfiles``).
+
+    When the option is given more than once, Snakemake keeps the last one, and so does this.
 
     Examples
     --------
-    >>> config_files_in(["--configfile", "a.yaml", "b.yaml", "--cores", "8", "--configfiles=c.yaml"])
-    ['a.yaml', 'b.yaml', 'c.yaml']
+    >>> config_files_in(["--configfile", "a.yaml", "b.yaml", "--cores", "8"])
+    ['a.yaml', 'b.yaml']
     """
-    return [value for _, value in _option_values(args, _is_configfile_option)]
+    occurrences = _option_values(args, _is_configfile_option)
+    return [value for _, value in occurrences[-1]] if occurrences else []
 
 
 def check_config_file(path: str | os.PathLike[str]) -> dict:
@@ -159,7 +163,8 @@ def snakemake_command(args: Sequence[str], workflow: Path | None = None, python:
             raise ConfigError(f"argument {arg!r}: glmsteps run always runs glmsteps' own workflow "
                               f"({folder / 'Snakefile'}); drop the option, or call snakemake directly "
                               "for another Snakefile")
-    for i, value in _option_values(args, lambda name: name == "--profile"):
+    for i, value in (pair for occurrence in _option_values(args, lambda name: name == "--profile")
+                     for pair in occurrence):
         packaged = folder / value
         if not Path(value).exists() and packaged.is_dir():
             args[i] = args[i].replace(value, str(packaged)) if args[i].startswith("--") else str(packaged)
