@@ -157,8 +157,9 @@ def snakemake_command(args: Sequence[str], workflow: Path | None = None, python:
     """
     folder = workflow if workflow is not None else workflow_dir()
     args = list(args)
-    for arg in args:
-        if arg == "-s" or (arg.startswith("-s") and not arg.startswith("--")) or \
+    options = args[:args.index("--")] if "--" in args else args  # after "--" come targets only
+    for arg in options:
+        if (arg.startswith("-s") and not arg.startswith("--")) or \
                 (arg.startswith("--sn") and "--snakefile".startswith(arg.partition("=")[0])):
             raise ConfigError(f"argument {arg!r}: glmsteps run always runs glmsteps' own workflow "
                               f"({folder / 'Snakefile'}); drop the option, or call snakemake directly "
