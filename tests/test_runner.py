@@ -79,6 +79,17 @@ def test_a_clone_runs_its_own_top_level_workflow() -> None:
         assert (REPO / part).exists(), part
 
 
+def test_cli_prints_the_workflow_folder_and_the_run_help(capsys: pytest.CaptureFixture[str]) -> None:
+    from glmsteps import cli
+
+    assert cli.main(["workflow-dir"]) == 0
+    assert capsys.readouterr().out == f"{REPO}\n"
+    with pytest.raises(SystemExit) as stop:
+        cli.main(["run", "--cores", "2", "--help"])  # glmsteps' own help, never Snakemake started
+    assert stop.value.code == 0
+    assert "usage: glmsteps run" in capsys.readouterr().out
+
+
 def test_the_build_hook_ships_every_part_of_the_workflow() -> None:
     # setup.py is read, not run (running it would start a build)
     tree = ast.parse((REPO / "setup.py").read_text())
