@@ -134,7 +134,7 @@ wildcard_constraints:
     model="[A-Za-z0-9_]+",
     group_contrast="[A-Za-z0-9_]+",
 
-#: Per-rule constraints: rules that only make sense for t (or F) contrasts use these.
+#: Wildcard constraints for the rules that only make sense for t (or F) contrasts.
 T_CONTRAST = _alternation(T_CONTRASTS)
 F_CONTRAST = _alternation(F_CONTRASTS)
 
