@@ -48,11 +48,6 @@ INPUT_KEYS: tuple[str, ...] = ("events", "events_summary", "confounds", "confoun
 OUTPUT_KEYS: tuple[str, ...] = ("design", "summary", "figure", "correlation_figure")
 
 
-def check_params(params: Mapping[str, Any]) -> DesignSettings:
-    """The step's settings, checked against config/schema.yaml (:class:`glmsteps.settings.DesignSettings`)."""
-    return DesignSettings.from_params(params)
-
-
 def read_confounds_summary(path: str | os.PathLike[str]) -> tuple[int, int, bool]:
     """``n_volumes``, ``drop_initial_volumes`` and ``excluded`` from the confounds summary."""
     try:
@@ -139,7 +134,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
         missing = [k for k in keys if k not in given]
         if missing:
             raise ConfigError(f"{STEP}: named {group}(s) {missing} are missing; the rule must name {list(keys)}")
-    settings = check_params(params)
+    settings = DesignSettings.from_params(params)
     n_total, drop, excluded = read_confounds_summary(inputs["confounds_summary"])
     tr_s, n_bold, acquisition = read_events_summary(inputs["events_summary"])
     if n_bold != n_total:

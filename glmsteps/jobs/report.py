@@ -41,16 +41,6 @@ STEP = "report"
 logger = logging.getLogger("glmsteps")
 
 
-def check_params(params: Mapping[str, Any]) -> ReportSettings:
-    """The report's settings (:class:`glmsteps.settings.ReportSettings`); missing keys take the schema's defaults.
-
-    Raises
-    ------
-    ConfigError
-    """
-    return ReportSettings.from_params(params)
-
-
 def _list(inputs: Mapping[str, Any], key: str) -> tuple[str, ...]:
     value = inputs.get(key, [])
     if isinstance(value, (str, os.PathLike)):
@@ -76,7 +66,7 @@ def sources_from(inputs: Mapping[str, Any]) -> ReportSources:
 def run(inputs: Mapping[str, Any], outputs: Mapping[str, Any], params: Mapping[str, Any],
         wildcards: Mapping[str, str], threads: int = 1) -> None:
     """Write the report pages (see the module docstring)."""
-    settings = check_params(params)
+    settings = ReportSettings.from_params(params)
     for key in ("study", "qc_table"):
         if key not in outputs:
             raise ConfigError(f"rule report: output {key!r} is missing; name the outputs study, subject_pages, qc_table")
