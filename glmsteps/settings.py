@@ -157,19 +157,16 @@ def schema_keys(schema: Mapping[str, Any]) -> dict[str, dict[str, Any]]:
 
 
 def schema_node(key: str, schema: Mapping[str, Any] | None = None) -> dict[str, Any]:
-    """The schema node of one dotted key (``KeyError`` when the schema has no such key)."""
-    return _keys_of(id(schema) if schema is not None else None, schema)[key]
+    """The schema node of one dotted key (``KeyError`` when the schema has no such key).
+
+    ``schema`` None: the workflow's schema (its keys are listed once per process).
+    """
+    return (schema_keys(schema) if schema is not None else _default_keys())[key]
 
 
-_KEY_CACHE: dict[int | None, dict[str, dict[str, Any]]] = {}
-
-
-def _keys_of(token: int | None, schema: Mapping[str, Any] | None) -> dict[str, dict[str, Any]]:
-    if schema is not None:
-        return schema_keys(schema)
-    if token not in _KEY_CACHE:
-        _KEY_CACHE[token] = schema_keys(load_schema())
-    return _KEY_CACHE[token]
+@functools.lru_cache(maxsize=1)
+def _default_keys() -> dict[str, dict[str, Any]]:
+    return schema_keys(load_schema())
 
 
 # ---------------------------------------------------------------------------
@@ -351,16 +348,14 @@ class StepSettings:
 
     # ------------------------------------------------------------------ construction
     @classmethod
-    def from_params(cls: type[_Settings], params: Mapping[str, Any], *, others: Sequence[str] = (),
-                    fill_defaults: bool | None = None, schema: Mapping[str, Any] | None = None) -> _Settings:
+    def from_params(cls: type[_Settings], params: Mapping[str, Any], *, fill_defaults: bool | None = None,
+                    schema: Mapping[str, Any] | None = None) -> _Settings:
         """The settings from a job's params: defaults filled in and every value checked.
 
         Parameters
         ----------
         params : mapping
             The params of the step's rule (flat; nested settings as mappings).
-        others : sequence of str
-            Params the job hands to another settings object (not unknown).
         fill_defaults : bool, optional
             Fill missing keys with the schema's defaults; default: unless the class is ``STRICT``.
         schema : mapping, optional
@@ -376,7 +371,7 @@ class StepSettings:
         fill = (not cls.STRICT) if fill_defaults is None else fill_defaults
         names = [f.name for f in fields(cls)]
         entry = str(params["name"]) if isinstance(params.get("name"), str) else None
-        unknown = sorted(set(params) - set(names) - set(others))
+        unknown = sorted(set(params) - set(names))
         if unknown:
             raise cls.ERROR(f"step {cls.STEP}: unknown setting(s) {unknown}; it takes exactly {names} "
                             "(config/schema.yaml)")
@@ -396,8 +391,7 @@ class StepSettings:
 
     @classmethod
     def defaults(cls: type[_Settings]) -> _Settings:
-        """Every field at its schema default (fields without a default must be given: KeyError-free
-        only for steps whose settings all have one)."""
+        """Every field at its schema default (for a step whose settings all have one)."""
         return cls.from_params({}, fill_defaults=True)
 
     @classmethod
@@ -805,7 +799,7 @@ def _labels(schema: Mapping[str, Any] | None) -> dict[str, tuple[str, str]]:
 
 
 try:  # read once at import, so that the jobs the warm launcher forks (glmsteps.launch) share it
-    _keys_of(None, None)
+    _default_keys()
     _default_labels()
 except ConfigError:  # pragma: no cover - reported by the first job that needs the schema
     pass

@@ -25,8 +25,8 @@ import pandas as pd
 from ..errors import EventsError
 from ..events import validate_events
 from ..fileio import read_user_tsv, write_json, write_tsv
-from ..settings import EventsSettings
 from ..provenance import build_record, collect_warnings, display_path, sidecar_path, write_sidecar
+from ..settings import EventsSettings
 from ..volumes import bids_sidecar_of, read_bold_header, read_run_timing
 
 STEP = "validate_events"
