@@ -93,10 +93,10 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
         result = pm.run_permutation_test(
             data.design.matrix, data.Y[:, complete], data.c, voxel_index, data.shape, method,
             settings.n_permutations, settings.seed, threshold,
-            blocks=data.design.blocks, tfce=settings.tfce, tfce_step=float(settings.tfce_step),
+            blocks=data.design.blocks, tfce=settings.tfce, tfce_step=settings.tfce_step,
             connectivity=settings.connectivity, progress=pm.log_progress, tail=tail)
         table, numbers = pm.observed_cluster_table(result, voxel_index, data.shape, data.affine,
-                                                   int(settings.subpeaks), float(settings.subpeak_spacing_mm))
+                                                   settings.subpeaks, settings.subpeak_spacing_mm)
     record = build_record(STEP, params, {k: inputs[k] for k in ("effect", "variance", "participants")},
                           warnings_seen=seen)
     summary = group_summary(data, wildcards)
@@ -109,9 +109,9 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
         "cluster_forming_p": settings.cluster_forming_p, "cluster_forming_t": threshold, "dof": dof,
         "connectivity": settings.connectivity,
         "cluster_mass": "sum of the statistic's magnitude over the cluster's voxels",
-        "tfce": settings.tfce, "tfce_step": float(settings.tfce_step),
+        "tfce": settings.tfce, "tfce_step": settings.tfce_step,
         "tfce_extent_power": pm.TFCE_EXTENT_POWER, "tfce_height_power": pm.TFCE_HEIGHT_POWER,
-        "subpeaks": settings.subpeaks, "subpeak_spacing_mm": float(settings.subpeak_spacing_mm),
+        "subpeaks": settings.subpeaks, "subpeak_spacing_mm": settings.subpeak_spacing_mm,
         "voxels_tested": int(voxel_index.size), "voxels_not_tested": n_left_out, "n_clusters": int(len(table)),
     }
     # p_fwe_cluster: extent FWE p of each voxel's cluster, 1 at tested voxels outside clusters
