@@ -135,7 +135,7 @@ def test_audit_lists_every_step_and_raw_input_once(tmp_path: Path) -> None:
 
 
 def test_plain_words_known_and_unknown_keys() -> None:
-    # plain-word rendering of the settings (our own label table, glmsteps.audit.SETTING_LABELS)
+    # plain-word rendering of the settings (labels: config/schema.yaml's titles, glmsteps.settings.setting_labels)
     words = audit.describe_params({"autocorrelation": "ar1", "ar_smoothing_fwhm_mm": 0})
     assert "; ".join(words) == "autocorrelation model: ar1; smoothing of AR coefficients: 0 mm FWHM"
     # unknown keys fall back to the key itself; nested sections get dotted keys

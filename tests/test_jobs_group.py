@@ -371,22 +371,6 @@ def _schema() -> dict:
     return yaml.safe_load(SCHEMA.read_text())
 
 
-def test_step_defaults_are_the_schema_defaults() -> None:
-    schema = _schema()
-    model_props = schema["properties"]["group_models"]["additionalProperties"]["properties"]
-    for key, value in groupdata.MODEL_DEFAULTS.items():
-        assert model_props[key]["default"] == value, key
-    perm = next(s for s in model_props["permutation"]["oneOf"] if s.get("type") == "object")["properties"]
-    assert set(perm) == set(perm_job.PERMUTATION_DEFAULTS)
-    for key, value in perm_job.PERMUTATION_DEFAULTS.items():
-        assert perm[key]["default"] == value, key
-    assert (perm["n_permutations"]["minimum"], perm["n_permutations"]["maximum"]) == perm_job.N_PERMUTATIONS_RANGE
-    setting = schema["definitions"]["threshold_setting"]["properties"]
-    assert setting["subpeaks"]["default"] == clusters.DEFAULT_SUBPEAKS
-    assert setting["subpeak_spacing_mm"]["default"] == clusters.DEFAULT_SUBPEAK_SPACING_MM
-    assert setting["subpeaks"]["maximum"] == perm["subpeaks"]["maximum"] == 20
-
-
 def _minimal_config(model_settings: dict) -> dict:
     return {"inputs": {"root": ".", "bold": "b", "events": "e", "confounds": "c", "mask": "m"},
             "contrasts": {"faces": {"weights": {"faces": 1}}},

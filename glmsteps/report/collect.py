@@ -34,6 +34,7 @@ import numpy as np
 
 from .. import __version__, audit
 from ..provenance import sidecar_path
+from ..settings import ReportSettings
 from . import qc, tables
 from .cache import FileCache, cache_key
 from .model import (ContrastInfo, Figure, FileLink, MapSection, ModelSection, Report, RunQc, RunSection,
@@ -56,18 +57,6 @@ QC_DIRECTIONS: dict[str, str] = {"censored_fraction": "high", "motion_mean": "hi
 #: Display cut of a z map drawn without a threshold setting (not a test).
 DISPLAY_Z = 3.09
 _ENTITY = {key: re.compile(rf"(?:^|[_/]){key}-([A-Za-z0-9]+)") for key in ("sub", "ses", "task", "run")}
-
-
-@dataclass(frozen=True)
-class ReportSettings:
-    """The report step's settings (``config/schema.yaml``, section ``report``)."""
-
-    site_column: str = "site"
-    outlier_mads: float = 3.0
-    min_site_runs: int = 5
-    min_relative_spread: float = 0.05
-    mosaic_slices: int = 12
-    mosaic_columns: int = 6
 
 
 @dataclass(frozen=True)
