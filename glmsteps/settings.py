@@ -45,8 +45,16 @@ from typing import Any, ClassVar, Literal, TypeVar
 
 from .errors import ConfigError, GlmstepsError, GroupError
 
+def _schema_path() -> Path:
+    """``config/schema.yaml`` of the clone holding the package, else the wheel's packaged copy."""
+    package = Path(__file__).resolve().parent
+    clone = package.parent / "config" / "schema.yaml"
+    packaged = package / "_workflow" / "config" / "schema.yaml"     # glmsteps.runner.PACKAGED_WORKFLOW
+    return clone if clone.is_file() or not packaged.is_file() else packaged
+
+
 #: The workflow's config schema (the single source of defaults, bounds and labels).
-SCHEMA_PATH = Path(__file__).resolve().parent.parent / "config" / "schema.yaml"
+SCHEMA_PATH = _schema_path()
 
 #: Schema keys no step reads from its params: they decide which jobs exist, where inputs are, or how
 #: many cores a job gets (key -> where it is used).
@@ -87,7 +95,7 @@ def _load(path: str) -> dict[str, Any]:
         text = Path(path).read_text(encoding="utf-8")
     except OSError as exc:
         raise ConfigError(f"{path}: cannot read the config schema ({exc}); glmsteps needs its "
-                          "config/schema.yaml beside the glmsteps package") from exc
+                          "config/schema.yaml (reinstall glmsteps from a clone or a wheel)") from exc
     loader = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
     schema = yaml.load(text, Loader=loader)  # noqa: S506 (a safe loader)
     if not isinstance(schema, dict):
