@@ -113,7 +113,7 @@ def write_run(folder: Path, shape: tuple[int, int, int], kind: str) -> dict[str,
     pd.DataFrame(X, columns=names).to_csv(folder / "design.tsv", sep="\t", index=False)
     (folder / "design.json").write_text(json.dumps({
         "names": names, "roles": roles, "conditions": ["a", "b"] + [""] * 11, "basis": ["main", "main"] + [""] * 11,
-        "first_volume": 0, "n_volumes": N_VOL, "excluded": False}))
+        "first_volume": 0, "n_volumes": N_VOL, "repetition_time_s": TR_S, "excluded": False}))
     return {"bold": str(path), "mask": str(folder / "mask.nii.gz"), "design": str(folder / "design.tsv"),
             "design_summary": str(folder / "design.json")}
 
