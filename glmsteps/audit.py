@@ -33,7 +33,7 @@ from typing import Any, Literal
 from .errors import ProvenanceError
 from .provenance import (OUTPUT_HASHES_KEY, canonical_json, hash_file, hash_params, lineage_hash, read_record,
                          sidecar_path)
-from .settings import setting_labels, setting_order
+from .settings import setting_labels, setting_null_meanings, setting_order
 
 #: Number of hex digits of a hash shown in text output.
 SHORT_HASH_LENGTH = 12
@@ -428,8 +428,12 @@ def describe_params(params: Mapping[str, Any]) -> list[str]:
     ['autocorrelation model: ar1', 'smoothing of AR coefficients: 0 mm FWHM']
     """
     out = []
+    meanings = setting_null_meanings()
     for key, value in sorted(flatten_params(params).items(), key=lambda kv: _setting_order(kv[0])):
         label, unit = setting_label(key)
+        if value is None and key in meanings:
+            out.append(f"{label}: {meanings[key]}")
+            continue
         text = format_value(value)
         out.append(f"{label}: {text} {unit}" if unit and text != "none" else f"{label}: {text}")
     return out

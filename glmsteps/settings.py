@@ -806,6 +806,20 @@ def _labels(schema: Mapping[str, Any] | None) -> dict[str, tuple[str, str]]:
     return labels
 
 
+def setting_null_meanings(schema: Mapping[str, Any] | None = None) -> dict[str, str]:
+    """What a ``null`` value means, for the params whose schema key says so (``null_means``).
+
+    Keys are dotted param names as in :func:`setting_labels`; e.g. a ``null``
+    ``ar_smoothing_fwhm_mm`` means twice the run's voxel size, not "no smoothing".
+    """
+    meanings: dict[str, str] = {}
+    for info in iter_fields():
+        node = schema_node(info.keys[0], schema) if info.keys else {}
+        if info.param not in meanings and node.get("null_means"):
+            meanings[info.param] = str(node["null_means"])
+    return meanings
+
+
 try:  # read once at import, so that the jobs the warm launcher forks (glmsteps.launch) share it
     _default_keys()
     _default_labels()
