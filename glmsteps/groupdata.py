@@ -4,7 +4,7 @@ This module reads the files the group steps need (subjects' combined effect
 and variance maps with their sidecars, ``participants.tsv``), validates them
 up front and assembles one :class:`GroupData` for the maths of
 :mod:`glmsteps.group` and :mod:`glmsteps.permutation`. Both group jobs
-(``glmsteps.jobs.group`` and ``glmsteps.jobs.group_permutation``) call
+(``glmsteps.jobs.group_model`` and ``glmsteps.jobs.group_permutation``) call
 :func:`load_group_data`, so they analyse exactly the same subjects and voxels.
 
 Subjects left out (each with its reason, recorded in every group sidecar and
@@ -304,7 +304,7 @@ def load_group_data(inputs: Mapping[str, Any], params: Mapping[str, Any],
         if settings.harmonise_sites:
             raise GroupError(f"{participants}: site column {site_column!r} is absent; add it or set "
                              "harmonise_sites: false")
-        if settings["site_as_covariate"]:
+        if settings.site_as_covariate:
             # modelling site without its column would silently fit another model than the config asks for
             raise GroupError(f"{participants}: site column {site_column!r} is absent, so site cannot be modelled "
                              "(site_as_covariate); add the column, or set site_column: null for a single-site "

@@ -630,7 +630,7 @@ class ThresholdSettings(StepSettings):
 class GroupContrastSettings(StepSettings):
     """The one group contrast of a group job: its name and weights over the group design's columns."""
 
-    STEP: ClassVar[str] = "group"
+    STEP: ClassVar[str] = "group_model"
     SHOWN_AS: ClassVar[str] = "group_models.<model>.group_contrasts"
     ERROR: ClassVar[type[GlmstepsError]] = GroupError
 
@@ -676,7 +676,7 @@ class GroupModelSettings(StepSettings):
     ``permutation`` is None for the group job (its rule passes none).
     """
 
-    STEP: ClassVar[str] = "group"
+    STEP: ClassVar[str] = "group_model"
     SHOWN_AS: ClassVar[str] = "{key}"
     ERROR: ClassVar[type[GlmstepsError]] = GroupError
 
@@ -735,7 +735,7 @@ SETTINGS_CLASSES: tuple[type[StepSettings], ...] = (
 STEP_SETTINGS: dict[str, type[StepSettings]] = {
     "validate_events": EventsSettings, "select_confounds": ConfoundsSettings, "build_design": DesignSettings,
     "fit": FitSettings, "contrast": ContrastSettings, "combine_runs": ContrastSettings,
-    "threshold": ThresholdSettings, "group": GroupModelSettings, "group_permutation": GroupModelSettings,
+    "threshold": ThresholdSettings, "group_model": GroupModelSettings, "group_permutation": GroupModelSettings,
     "report": ReportSettings}
 
 

@@ -41,12 +41,12 @@ import yaml
 
 from glmsteps.configfile import load_config
 from glmsteps.errors import ConfigError
-from glmsteps.jobs import confounds as confounds_job
+from glmsteps.jobs import select_confounds as confounds_job
 from glmsteps.jobs import contrast as contrast_job
-from glmsteps.jobs import design as design_job
-from glmsteps.jobs import events as events_job
+from glmsteps.jobs import build_design as design_job
+from glmsteps.jobs import validate_events as events_job
 from glmsteps.jobs import fit as fit_job
-from glmsteps.jobs import group as group_job
+from glmsteps.jobs import group_model as group_job
 from glmsteps.jobs.common import run_script
 from glmsteps.precheck import MAX_NAME_LENGTH, check_config_start
 from workflow_helpers import REPO, default_config, make_workspace

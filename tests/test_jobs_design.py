@@ -13,7 +13,7 @@ import pytest
 from scipy import stats
 
 from glmsteps.errors import ConfigError, DesignError
-from glmsteps.jobs import design as job
+from glmsteps.jobs import build_design as job
 
 N_VOLUMES = 60
 DROP = 3

@@ -19,7 +19,7 @@ from glmsteps import clusters, groupdata
 from glmsteps.errors import GroupError
 from glmsteps.fileio import read_tsv, save_nifti, write_json, write_tsv
 from glmsteps.harmonise import harmonise_site_effects
-from glmsteps.jobs import group as group_job
+from glmsteps.jobs import group_model as group_job
 from glmsteps.jobs import group_permutation as perm_job
 from glmsteps.jobs import threshold as threshold_job
 

@@ -1,7 +1,7 @@
 """Group permutation step: family-wise error p maps for one group contrast.
 
 Inputs
-    Same as ``glmsteps.jobs.group`` (``effect``, ``variance``, ``participants``),
+    Same as ``glmsteps.jobs.group_model`` (``effect``, ``variance``, ``participants``),
     read and validated by the same library function
     (:func:`glmsteps.groupdata.load_group_data`).
 Params

@@ -1016,7 +1016,7 @@ def _contrast_infos(rows: Sequence[IndexRow], definitions: Mapping[str, Mapping[
 
 
 _STEP_ORDER = ("validate_events", "select_confounds", "build_design", "fit", "contrast", "combine_runs", "threshold",
-               "group", "group_permutation")
+               "group_model", "group_permutation")
 
 
 def _settings_rows(records: Records, runs: Sequence[RunFiles], rows: Sequence[IndexRow],

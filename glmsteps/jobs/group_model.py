@@ -39,7 +39,7 @@ from ..maps import map_description, save_map, statistic_intent
 from ..plots.sites import plot_site_effects
 from ..provenance import build_record, collect_warnings, write_sidecar
 
-STEP = "group"
+STEP = "group_model"
 OUTPUT_KEYS = ("effect", "variance", "t", "z", "p", "site_qc", "site_figure")
 
 
