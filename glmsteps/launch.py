@@ -69,6 +69,9 @@ STEP_MODULES: dict[str, str] = {
 #: Modules the server imports before it serves (what the light steps need).
 WARM_MODULES: tuple[str, ...] = ("numpy", "scipy.special", "scipy.stats", "scipy.ndimage", "pandas", "nibabel",
                                  "h5py", "matplotlib", "matplotlib.figure", "matplotlib.backends.backend_agg")
+#: Environment variable in which the client hands its own start time (seconds since the epoch) to
+#: the forked job, whose process started later (read by glmsteps.jobs.common.process_start_time).
+PROCESS_START_VARIABLE = "GLMSTEPS_PROCESS_START"
 _LENGTH = struct.Struct("!I")
 
 
@@ -309,6 +312,18 @@ def run_warm(request: JobRequest, path: Path) -> int | None:
         sock.close()
 
 
+def own_start_time() -> float:
+    """This process's start (seconds since the epoch), from ``/proc``; now where there is none."""
+    try:
+        with open("/proc/self/stat", encoding="ascii") as fh:
+            fields = fh.read().rsplit(")", 1)[1].split()
+        with open("/proc/uptime", encoding="ascii") as fh:
+            uptime_s = float(fh.read().split()[0])
+        return time.time() - uptime_s + int(fields[19]) / os.sysconf("SC_CLK_TCK")
+    except (OSError, ValueError, IndexError):
+        return time.time()
+
+
 def main(argv: list[str] | None = None) -> int:
     """Client entry point: run one job (warm when possible); return its exit code."""
     args = list(sys.argv[1:] if argv is None else argv)
@@ -319,7 +334,10 @@ def main(argv: list[str] | None = None) -> int:
     request = parse_request(args[1:] if direct else args)
     if request.step not in STEP_MODULES:
         raise LaunchError(f"glmsteps.launch: unknown step {request.step!r}; known: {sorted(STEP_MODULES)}")
-    request = JobRequest(**{**asdict(request), "cwd": os.getcwd(), "env": dict(os.environ)})
+    env = dict(os.environ)
+    # the job's start-up overhead counts from this process's start (glmsteps.jobs.common.run_script)
+    env[PROCESS_START_VARIABLE] = f"{own_start_time():.6f}"
+    request = JobRequest(**{**asdict(request), "cwd": os.getcwd(), "env": env})
     if not direct and warm_enabled():
         path = socket_path()
         code = run_warm(request, path)
