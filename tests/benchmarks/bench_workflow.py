@@ -96,8 +96,8 @@ def _step_of(log: Path) -> str:
 def toy_study(base: Path, jobs: int) -> dict[str, object]:
     """(a), (b) and (d) on the toy study in ``base``."""
     data = base / "data"
-    subprocess.run([sys.executable, "-m", "glmsteps", "toy-study", str(data)], check=True, env=_env(),
-                   capture_output=True)
+    subprocess.run([sys.executable, "-c", "import sys; from glmsteps.cli import main; sys.exit(main())",
+                    "toy-study", str(data)], check=True, env=_env(), capture_output=True)
     config = yaml.safe_load((REPO / "config" / "config.yaml").read_text())
     config["inputs"]["root"] = str(data)
     config_path = base / "config.yaml"
