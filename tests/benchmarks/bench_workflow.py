@@ -32,6 +32,7 @@ import sys
 import tempfile
 import time
 from collections import defaultdict
+from dataclasses import dataclass
 from pathlib import Path
 
 import yaml
@@ -52,18 +53,35 @@ def _env() -> dict[str, str]:
     return env
 
 
-def snakemake(workdir: Path, config: Path, *args: str, peak_file: Path | None = None) -> tuple[float, str]:
-    """Run Snakemake (the repository's Snakefile, its default profile); wall seconds and stdout+stderr."""
+@dataclass
+class Run:
+    """One Snakemake command: wall seconds, CPU seconds (user + system, of Snakemake and the processes
+    it waited for; jobs forked by the warm launcher are not among them), peak RSS (MB) and its output."""
+
+    wall: float
+    cpu: float
+    peak_mb: float
+    output: str
+
+
+def snakemake(workdir: Path, config: Path, *args: str) -> Run:
+    """Run Snakemake (the repository's Snakefile, its default profile) under GNU time."""
     cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "Snakefile"), "--directory", str(workdir),
            "--configfile", str(config), *args]
-    if peak_file is not None:  # GNU time: this one command's own peak RSS
-        cmd = ["/usr/bin/time", "-f", "%M", "-o", str(peak_file)] + cmd
+    usage = workdir / ".bench_time"
+    if Path("/usr/bin/time").exists():  # GNU time: CPU seconds and this command's own peak RSS
+        cmd = ["/usr/bin/time", "-f", "%U %S %M", "-o", str(usage)] + cmd
     t0 = time.perf_counter()
     proc = subprocess.run(cmd, capture_output=True, text=True, env=_env())
     wall = time.perf_counter() - t0
     if proc.returncode != 0:
         raise SystemExit(f"snakemake {' '.join(args)} failed:\n{proc.stdout[-3000:]}\n{proc.stderr[-5000:]}")
-    return wall, proc.stdout + proc.stderr
+    cpu, peak_mb = float("nan"), float("nan")
+    if usage.exists():
+        user, system, peak_kb = usage.read_text().split()[-3:]
+        cpu, peak_mb = float(user) + float(system), int(peak_kb) / 1024
+        usage.unlink()
+    return Run(wall, cpu, peak_mb, proc.stdout + proc.stderr)
 
 
 def job_timings(logs: Path, since: float = 0.0) -> list[tuple[str, float, float]]:
@@ -103,7 +121,7 @@ def toy_study(base: Path, jobs: int) -> dict[str, object]:
     config_path = base / "config.yaml"
     config_path.write_text(yaml.safe_dump(config, sort_keys=False))
     started = time.time()
-    wall, out = snakemake(base, config_path, "--cores", str(jobs))
+    full = snakemake(base, config_path, "--cores", str(jobs))
     timings = job_timings(base / "results" / "logs", since=started)
     by_step: dict[str, list[float]] = defaultdict(list)
     for step, _, body in timings:
@@ -115,11 +133,11 @@ def toy_study(base: Path, jobs: int) -> dict[str, object]:
     config["contrasts"]["tap_minus_horn"] = {"weights": {"tap": 1, "horn": -1}}
     config_path.write_text(yaml.safe_dump(config, sort_keys=False))
     added_started = time.time()
-    added_wall, _ = snakemake(base, config_path, "--cores", str(jobs))
+    added = snakemake(base, config_path, "--cores", str(jobs))
     added_jobs = len(job_timings(base / "results" / "logs", since=added_started))
-    return {"wall": wall, "jobs": len(timings), "bodies": bodies, "overhead_median": statistics.median(overheads),
+    return {"wall": full.wall, "cpu": full.cpu, "jobs": len(timings), "bodies": bodies, "overhead_median": statistics.median(overheads),
             "overhead_p90": sorted(overheads)[int(0.9 * (len(overheads) - 1))], "by_step": by_step,
-            "added_wall": added_wall, "added_jobs": added_jobs}
+            "added_wall": added.wall, "added_cpu": added.cpu, "added_jobs": added_jobs}
 
 
 def synthetic_study(base: Path, n_subjects: int, n_runs: int, n_contrasts: int) -> dict[str, float]:
@@ -130,13 +148,11 @@ def synthetic_study(base: Path, n_subjects: int, n_runs: int, n_contrasts: int) 
     config["thresholds"].pop("run", None)  # the schema's default: no run-level thresholds
     config_path = base / "config.yaml"
     config_path.write_text(yaml.safe_dump(config))
-    peak_file = base / "peak_kb"
-    dry_wall, out = snakemake(base, config_path, "--dry-run", "--cores", "2", peak_file=peak_file)
-    peak_mb = int(peak_file.read_text().split()[-1]) / 1024
-    n_jobs = next((int(line.split()[-1]) for line in out.splitlines() if line.startswith("total")), -1)
+    dry = snakemake(base, config_path, "--dry-run", "--cores", "2")
+    n_jobs = next((int(line.split()[-1]) for line in dry.output.splitlines() if line.startswith("total")), -1)
 
     # every output in place, all with one time stamp (none older than its inputs), then a no-op run
-    _, listing = snakemake(base, config_path, "--dry-run", "--quiet", "host", "--cores", "2")
+    listing = snakemake(base, config_path, "--dry-run", "--quiet", "host", "--cores", "2").output
     stamp = time.time()
     for line in listing.splitlines():
         m = _OUTPUT.match(line)
@@ -146,10 +162,19 @@ def synthetic_study(base: Path, n_subjects: int, n_runs: int, n_contrasts: int) 
                 path.parent.mkdir(parents=True, exist_ok=True)
                 path.touch()
                 os.utime(path, (stamp, stamp))
-    noop_wall, noop_out = snakemake(base, config_path, "--cores", "2")
-    if "Nothing to be done" not in noop_out:
-        raise SystemExit(f"the no-op run planned jobs:\n{noop_out[-3000:]}")
-    return {"jobs": n_jobs, "dry_wall": dry_wall, "peak_mb": peak_mb, "noop_wall": noop_wall}
+    noop = snakemake(base, config_path, "--cores", "2")
+    if "Nothing to be done" not in noop.output:
+        raise SystemExit(f"the no-op run planned jobs:\n{noop.output[-3000:]}")
+    return {"jobs": n_jobs, "dry_wall": dry.wall, "dry_cpu": dry.cpu, "peak_mb": dry.peak_mb,
+            "noop_wall": noop.wall, "noop_cpu": noop.cpu}
+
+
+def _print_rows(rows: list[tuple[str, str, str]]) -> None:
+    width = max(len(r[0]) for r in rows)
+    print(f"{'measure':<{width}}  {'value':>12}  target")
+    for name, value, target in rows:
+        print(f"{name:<{width}}  {value:>12}  {target}")
+    sys.stdout.flush()
 
 
 def main(argv: list[str] | None = None) -> None:
@@ -169,18 +194,22 @@ def main(argv: list[str] | None = None) -> None:
             toy = toy_study(Path(tmp), args.cores)
         rows += [
             ("toy study end to end: wall s", f"{toy['wall']:.1f}", "<= 60"),
+            ("toy study: CPU s of Snakemake and its waited-for processes", f"{toy['cpu']:.1f}", ""),
             ("toy study: jobs", f"{toy['jobs']}", ""),
             ("toy study: sum of job bodies s", f"{toy['bodies']:.1f}", ""),
             ("toy study: wall / bodies", f"{toy['wall'] / toy['bodies']:.2f}", "<= 1.5"),
             ("per-job start-up overhead, median s", f"{toy['overhead_median']:.3f}", "<= 0.3"),
             ("per-job start-up overhead, 90th percentile s", f"{toy['overhead_p90']:.3f}", ""),
             ("one contrast added: wall s", f"{toy['added_wall']:.1f}", ""),
+            ("one contrast added: CPU s (as above)", f"{toy['added_cpu']:.1f}", ""),
             ("one contrast added: jobs", f"{toy['added_jobs']}", ""),
             ("one contrast added / full run", f"{toy['added_wall'] / toy['wall']:.2f}", "<= 0.10"),
         ]
         for step, bodies in sorted(toy["by_step"].items(), key=lambda kv: -sum(kv[1])):
             rows.append((f"  bodies of {step} ({len(bodies)} jobs): sum s, median s",
                          f"{sum(bodies):.1f}, {statistics.median(bodies):.2f}", ""))
+        _print_rows(rows)
+        rows = []
     if not args.skip_synthetic:
         with tempfile.TemporaryDirectory() as tmp:
             syn = synthetic_study(Path(tmp), args.subjects, args.runs, args.contrasts)
@@ -188,13 +217,14 @@ def main(argv: list[str] | None = None) -> None:
         rows += [
             (f"{size}: jobs", f"{syn['jobs']}", ""),
             (f"{size}: snakemake -n wall s", f"{syn['dry_wall']:.1f}", "<= 30"),
+            (f"{size}: snakemake -n CPU s", f"{syn['dry_cpu']:.1f}", ""),
             (f"{size}: snakemake -n peak RSS MB", f"{syn['peak_mb']:.0f}", "<= 1024"),
             (f"{size}: no-op run wall s", f"{syn['noop_wall']:.1f}", "<= 30"),
+            (f"{size}: no-op run CPU s", f"{syn['noop_cpu']:.1f}", ""),
         ]
-    width = max(len(r[0]) for r in rows)
-    print(f"{'measure':<{width}}  {'value':>12}  target")
-    for name, value, target in rows:
-        print(f"{name:<{width}}  {value:>12}  {target}")
+        _print_rows(rows)
+    print(f"load average {os.getloadavg()[0]:.2f} at the end (wall times on a shared machine grow with its load; "
+          "CPU seconds much less)")
 
 
 if __name__ == "__main__":
