@@ -28,6 +28,7 @@ include: "rules/report.smk"
 
 onstart:
     start_launcher()
+    lift_local_rate_limit()
 
 
 onsuccess:

@@ -195,6 +195,22 @@ def start_launcher():
     start_server()
 
 
+def lift_local_rate_limit():
+    """Turn Snakemake's job rate limiter off for a local run (called as the run starts).
+
+    The limiter (``--max-jobs-per-timespan``, 100 a second by default) re-runs the scheduler
+    on a 1 s timer after every scheduling pass, and each such pass starts the next timer: every
+    job that finishes starts one more chain, so on a local run the passes grow with the jobs
+    finished (7,306 passes for the toy study's 350 jobs; with the limiter off, 12 s less CPU and
+    5 s less wall time on the toy study). A local run needs no submission limit; a cluster run
+    keeps it. Relies on Snakemake's scheduler attribute (checked, so a newer Snakemake without it
+    just keeps its limiter).
+    """
+    scheduler = getattr(workflow, "scheduler", None)
+    if scheduler is not None and workflow.local_exec and hasattr(scheduler, "job_rate_limiter"):
+        scheduler.job_rate_limiter = None
+
+
 def step_command(step):
     """Shell command of a light step: ``python -m glmsteps.launch`` (a fork of a warm process).
 
@@ -335,3 +351,5 @@ def report_subject_pages():
 
 def all_targets():
     return PLAN.all_targets()
+
+
