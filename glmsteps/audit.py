@@ -33,6 +33,7 @@ from typing import Any, Literal
 from .errors import ProvenanceError
 from .provenance import (OUTPUT_HASHES_KEY, canonical_json, hash_file, hash_params, lineage_hash, read_record,
                          sidecar_path)
+from .settings import setting_labels, setting_null_meanings, setting_order
 
 #: Number of hex digits of a hash shown in text output.
 SHORT_HASH_LENGTH = 12
@@ -50,73 +51,6 @@ ContentHasher = Callable[[str], "str | None"]
 
 InputKind = Literal["raw", "step", "unresolved"]
 CheckStatus = Literal["ok", "changed", "missing", "stale", "record_missing", "record_inconsistent", "unrecorded"]
-
-#: Plain-word labels of known settings: key -> (label, unit). A nested key is
-#: looked up by its full dotted name first, then by its last part; unknown keys
-#: are shown as they are.
-SETTING_LABELS: dict[str, tuple[str, str]] = {
-    # events
-    "condition_column": ("condition column", ""),
-    "modulators": ("parametric modulators", ""),
-    "repetition_time_s": ("repetition time", "s"),
-    # confounds
-    "columns": ("confound columns (names or patterns)", ""),
-    "derivatives": ("add temporal derivatives", ""),
-    "squares": ("add squares", ""),
-    "demean": ("mean-centre confounds", ""),
-    "scale": ("scale confounds to unit SD", ""),
-    "censor.column": ("censoring column", ""),
-    "censor.threshold": ("censor volumes above", ""),
-    "censor.volumes_before": ("also censor volumes before", "volumes"),
-    "censor.volumes_after": ("also censor volumes after", "volumes"),
-    "drop_initial_volumes": ("initial volumes dropped", "volumes"),
-    "max_censored_fraction": ("largest fraction of censored volumes", ""),
-    # design
-    "conditions": ("fixed condition list", ""),
-    "volume_time_fraction": ("time within each repetition a volume stands for (fraction)", ""),
-    "hrf": ("response model", ""),
-    "fir_bins": ("FIR bins", ""),
-    "fir_bin_width_s": ("FIR bin width", "s"),
-    "time_resolution_s": ("convolution time step", "s"),
-    "drift_basis": ("drift basis", ""),
-    "cutoff_s": ("drift cutoff period", "s"),
-    "legendre_order": ("highest Legendre order", ""),
-    # fit
-    "scaling": ("intensity scaling", ""),
-    "grand_mean_value": ("grand-mean target", ""),
-    "autocorrelation": ("autocorrelation model", ""),
-    "ar_order": ("AR order", ""),
-    "ar_smoothing_fwhm_mm": ("smoothing of AR coefficients", "mm FWHM"),
-    "ar_bin_width": ("AR coefficient bin width", ""),
-    # contrasts and thresholds
-    "name": ("name", ""),
-    "definition": ("contrast definition", ""),
-    "tail": ("tail of the test", ""),
-    "skip_nonestimable": ("skip runs where the contrast is not estimable", ""),
-    "method": ("threshold method", ""),
-    "p": ("voxelwise p", ""),
-    "q": ("false discovery rate", ""),
-    "alpha": ("family-wise error level", ""),
-    "forming_p": ("cluster-forming p", ""),
-    "min_cluster_voxels": ("smallest cluster", "voxels"),
-    "connectivity": ("cluster connectivity", "neighbours"),
-    # group
-    "design": ("group design", ""),
-    "group_column": ("group column", ""),
-    "pair_column": ("pair column", ""),
-    "covariates": ("covariates", ""),
-    "site_column": ("site column", ""),
-    "site_as_covariate": ("site as a covariate", ""),
-    "estimation": ("group estimation", ""),
-    "harmonise_sites": ("empirical-Bayes site harmonisation", ""),
-    "mask_fraction": ("group mask: fraction of subjects present", ""),
-    "contrast.weights": ("group contrast weights", ""),
-    "permutation.n_permutations": ("number of permutations", ""),
-    "permutation.seed": ("random seed", ""),
-    "permutation.cluster_forming_p": ("cluster-forming p", ""),
-    "permutation.tfce": ("threshold-free cluster enhancement", ""),
-}
-
 
 # ----------------------------------------------------------------------------
 # The chain as a dataclass tree
@@ -449,30 +383,44 @@ def format_value(value: Any) -> str:
 
 
 def setting_label(key: str) -> tuple[str, str]:
-    """Plain-word label and unit of a (dotted) setting key; unknown keys label themselves."""
-    if key in SETTING_LABELS:
-        return SETTING_LABELS[key]
-    last = key.rsplit(".", 1)[-1]
-    if last in SETTING_LABELS:
-        label, unit = SETTING_LABELS[last]
-        prefix = key[: -len(last) - 1]
-        return (f"{prefix} {label}" if prefix else label), unit
+    """Plain-word label and unit of a (dotted) param key, from config/schema.yaml's ``title`` and ``unit``
+    (:func:`glmsteps.settings.setting_labels`).
+
+    A key under a labelled one (a condition of ``modulators``, a column of a contrast's weights) is shown
+    as that label with the rest of the key in brackets; another nested key by its section and the label
+    of its last part (``fit.autocorrelation``: "fit autocorrelation model"); unknown keys label themselves.
+
+    Examples
+    --------
+    >>> setting_label("ar_smoothing_fwhm_mm"), setting_label("modulators.go")
+    (('smoothing of AR coefficients', 'mm FWHM'), ('parametric modulators (go)', ''))
+    """
+    labels = setting_labels()
+    if key in labels:
+        return labels[key]
+    parts = key.split(".")
+    for n in range(len(parts) - 1, 0, -1):
+        head = ".".join(parts[:n])
+        if head in labels:
+            return f"{labels[head][0]} ({'.'.join(parts[n:])})", ""
+    if parts[-1] in labels:
+        label, unit = labels[parts[-1]]
+        return f"{'.'.join(parts[:-1])} {label}", unit
     return key, ""
 
 
-_LABEL_ORDER = {key: i for i, key in enumerate(SETTING_LABELS)}
-
-
 def _setting_order(key: str) -> tuple[str, int, str]:
+    order = setting_order()
     prefix, _, last = key.rpartition(".")
-    return prefix, _LABEL_ORDER.get(last, len(_LABEL_ORDER)), last
+    return prefix, order.get(key, order.get(last, len(order))), last
 
 
 def describe_params(params: Mapping[str, Any]) -> list[str]:
     """Each setting as ``"label: value unit"``.
 
-    Known settings come first, in the order of :data:`SETTING_LABELS`, then the
-    others by key; nested settings are grouped by section.
+    Known settings come first, in the order of the steps' settings classes
+    (:data:`glmsteps.settings.SETTINGS_CLASSES`), then the others by key;
+    nested settings are grouped by section.
 
     Examples
     --------
@@ -480,8 +428,12 @@ def describe_params(params: Mapping[str, Any]) -> list[str]:
     ['autocorrelation model: ar1', 'smoothing of AR coefficients: 0 mm FWHM']
     """
     out = []
+    meanings = setting_null_meanings()
     for key, value in sorted(flatten_params(params).items(), key=lambda kv: _setting_order(kv[0])):
         label, unit = setting_label(key)
+        if value is None and key in meanings:
+            out.append(f"{label}: {meanings[key]}")
+            continue
         text = format_value(value)
         out.append(f"{label}: {text} {unit}" if unit and text != "none" else f"{label}: {text}")
     return out

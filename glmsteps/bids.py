@@ -1,4 +1,5 @@
-"""BIDS-style path patterns: run discovery and entity parsing (file names only).
+"""BIDS-style path patterns: run discovery and entity parsing (file names only); the results'
+dataset description.
 
 Discovery matches the configured ``bold`` pattern against the file system with
 one ``glob`` and a regular expression; no image is opened, so the Snakefile
@@ -144,3 +145,38 @@ def discover_runs(root: str | os.PathLike[str], bold_pattern: str) -> list[RunKe
             g = m.groupdict()
             runs.append(RunKey(subject=g["subject"], task=g["task"], run=g["run"], session=g.get("session") or ""))
     return sorted(set(runs))
+
+
+#: The BIDS version the results' ``dataset_description.json`` declares (the toy study's too).
+BIDS_VERSION = "1.9.0"
+#: File name of a BIDS dataset's description, at the top of the dataset.
+DATASET_DESCRIPTION = "dataset_description.json"
+
+
+def derivative_description(version: str) -> dict[str, object]:
+    """The ``dataset_description.json`` that marks the output folder as a BIDS derivative dataset.
+
+    Parameters
+    ----------
+    version : str
+        The glmsteps version that wrote the results.
+
+    Returns
+    -------
+    dict
+        ``Name``, ``BIDSVersion``, ``DatasetType`` (``"derivative"``) and ``GeneratedBy``
+        (one entry: glmsteps and its version), the fields the BIDS specification requires of
+        a derivative dataset's description (BIDS 1.9, "Derived dataset and pipeline
+        description"; from memory).
+
+    Examples
+    --------
+    >>> derivative_description("1.2.3")["GeneratedBy"]
+    [{'Name': 'glmsteps', 'Version': '1.2.3', 'Description': 'task-fMRI GLM statistical maps'}]
+    """
+    return {
+        "Name": "glmsteps statistical maps",
+        "BIDSVersion": BIDS_VERSION,
+        "DatasetType": "derivative",
+        "GeneratedBy": [{"Name": "glmsteps", "Version": version, "Description": "task-fMRI GLM statistical maps"}],
+    }

@@ -11,6 +11,14 @@ Subcommands
     lineages; exit 0 for identical lineage, 1 otherwise.
 ``toy-study DIR [--seed N]``
     Write the invented demo study to ``DIR``.
+``run [SNAKEMAKE ARGUMENTS]``
+    Run the workflow with Snakemake in the current folder (``--configfile my.yaml --cores 8
+    -n`` ...: every argument goes to Snakemake). The config files are read safely first: a
+    syntax error or a tag that would run code is one line naming the file and the line, and
+    Snakemake is not started.
+``workflow-dir``
+    Print the folder holding the workflow's Snakefile, rules and ``config/config.yaml`` (the
+    template to copy for a study of one's own).
 
 User errors (a missing file, an output without provenance) print one line on
 stderr and exit with code 2.
@@ -62,6 +70,22 @@ def build_parser() -> argparse.ArgumentParser:
     toy.add_argument("dest", metavar="DIR", type=Path, help="destination folder")
     toy.add_argument("--seed", metavar="N", type=int, default=None,
                      help="random seed (default: the generator's own)")
+
+    run = sub.add_parser(
+        "run", help="run the workflow with Snakemake (all arguments go to Snakemake)",
+        description="Run the glmsteps workflow with Snakemake in the current folder. Every argument is "
+                    "passed to Snakemake (python -m snakemake --help lists them), e.g. "
+                    "glmsteps run --configfile my.yaml --cores 8 -n. The config files are read safely "
+                    "first; a mistake in one is reported as one line before Snakemake starts. "
+                    "Without --configfile the toy study's config is used (data in toy_study/data: "
+                    "glmsteps toy-study toy_study/data). --profile config/slurm finds the cluster "
+                    "profile shipped with the workflow.")
+    run.add_argument("snakemake_args", metavar="SNAKEMAKE_ARGUMENTS", nargs="*",
+                     help="arguments for Snakemake")
+
+    sub.add_parser("workflow-dir", help="print the folder of the workflow's Snakefile, rules and config",
+                   description="Print the folder holding the Snakefile, rules/, scripts/, config/ and profiles/ "
+                               "that glmsteps run uses; copy config/config.yaml from there to start a study.")
     return parser
 
 
@@ -111,7 +135,35 @@ def _run_toy_study(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-_COMMANDS = {"audit": _run_audit, "diff": _run_diff, "toy-study": _run_toy_study}
+def _run_workflow_dir(args: argparse.Namespace) -> int:
+    from .runner import workflow_dir
+
+    print(workflow_dir())
+    return EXIT_OK
+
+
+def _run_workflow(snakemake_args: list[str]) -> int:
+    """``glmsteps run``: check the config files, then become ``python -m snakemake`` (never returns then)."""
+    import os
+
+    from .runner import prepare_run
+
+    if any(arg in ("-h", "--help") for arg in snakemake_args):
+        build_parser().parse_args(["run", "--help"])  # prints the help, exits 0
+    try:
+        command = prepare_run(snakemake_args)
+    except GlmstepsError as exc:
+        print(f"glmsteps run: error: {exc}", file=sys.stderr)
+        return EXIT_USER_ERROR
+    sys.stdout.flush()
+    sys.stderr.flush()
+    # exec, not a child process: Snakemake gets the terminal, Ctrl-C and the exit status as if started itself
+    os.execv(command[0], command)
+    return EXIT_OK  # not reached
+
+
+_COMMANDS = {"audit": _run_audit, "diff": _run_diff, "toy-study": _run_toy_study,
+             "workflow-dir": _run_workflow_dir}
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -126,8 +178,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     -------
     int
         0 success / identical lineage / all files verified; 1 a difference or
-        a failed verification; 2 a user error (one line on stderr).
+        a failed verification; 2 a user error (one line on stderr). ``run``
+        replaces this process with Snakemake, whose exit status is the command's.
     """
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if argv[:1] == ["run"]:
+        # not through argparse: Snakemake's options (-n, --cores 8, ...) must pass unchanged
+        return _run_workflow(argv[1:])
     args = build_parser().parse_args(argv)
     try:
         return _COMMANDS[args.command](args)

@@ -70,16 +70,19 @@ class ContrastSpec:
 
 
 def _check_weights(name: str, weights: Any, where: str) -> dict[str, float]:
+    """``where``: the config key of the weights, e.g. ``contrasts.faces.weights`` or ``contrasts.any.rows[0]``."""
     if not isinstance(weights, Mapping) or not weights:
         raise ContrastError(f"contrast {name!r}: {where} must be a non-empty mapping of condition or column to weight, "
                             f"found {weights!r}")
     out = {}
     for key, value in weights.items():
         if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(float(value)):
-            raise ContrastError(f"contrast {name!r}: {where} weight of {key!r} must be a finite number, found {value!r}")
+            raise ContrastError(f"contrast {name!r}: the weight of {key!r} in {where} must be a finite number, found "
+                                f"{value!r}; write a number")
         out[str(key)] = float(value)
     if all(v == 0.0 for v in out.values()):
-        raise ContrastError(f"contrast {name!r}: {where} has only zero weights; give at least one non-zero weight")
+        raise ContrastError(f"contrast {name!r}: {where} has only zero weights; give at least one non-zero weight "
+                            "or delete it")
     return out
 
 
@@ -119,11 +122,12 @@ def parse_spec(name: str, spec: Mapping[str, Any], tail: str | None = None) -> C
     if chosen_tail not in stats.TAILS:
         raise ContrastError(f"contrast {name!r}: tail must be one of {list(stats.TAILS)}, found {chosen_tail!r}")
     if has_w:
-        return ContrastSpec(name, "t", [_check_weights(name, spec["weights"], "weights")], chosen_tail)
+        return ContrastSpec(name, "t", [_check_weights(name, spec["weights"], f"contrasts.{name}.weights")],
+                            chosen_tail)
     rows = spec["rows"]
     if not isinstance(rows, Sequence) or isinstance(rows, str) or not rows:
         raise ContrastError(f"contrast {name!r}: rows must be a non-empty list of weight mappings, found {rows!r}")
-    return ContrastSpec(name, "F", [_check_weights(name, r, f"row {i + 1}") for i, r in enumerate(rows)], "two-sided")
+    return ContrastSpec(name, "F", [_check_weights(name, r, f"contrasts.{name}.rows[{i}]") for i, r in enumerate(rows)], "two-sided")
 
 
 def _condition_columns(cond: str, conditions: Sequence[str], basis: Sequence[str]) -> list[int]:

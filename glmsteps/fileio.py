@@ -114,6 +114,13 @@ def read_tsv(path: str | os.PathLike[str]) -> pd.DataFrame:
 def read_user_tsv(path: str | os.PathLike[str], error: type[Exception], fix: str) -> "pd.DataFrame":
     """Read a user's TSV (:func:`read_tsv`); an unreadable file raises ``error`` in one line.
 
+    Before the table is parsed, the text is checked for what a table reader
+    would misread silently or report only by its own line numbers: an empty
+    file, bytes that are not UTF-8, a header separated by commas or semicolons,
+    a column name given twice (a reader renames the second), and a data row
+    with more or fewer cells than the header (one cell more makes a reader
+    take the first column as row labels and shift every other column).
+
     Parameters
     ----------
     path : path-like
@@ -126,9 +133,44 @@ def read_user_tsv(path: str | os.PathLike[str], error: type[Exception], fix: str
     import pandas as pd
 
     try:
+        raw = Path(path).read_bytes()
+    except OSError as exc:
+        raise error(f"{path}: cannot read the file ({exc.strerror or exc}); {fix}") from exc
+    if not raw.strip():
+        raise error(f"{path}: the file is empty (no header line); {fix}")
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise error(f"{path}: not UTF-8 text (byte 0x{raw[exc.start]:02x} at byte {exc.start}); save it as UTF-8 "
+                    f"({fix})") from exc
+    lines = text.splitlines()
+    header = lines[0].split("\t")
+    if len(header) == 1:
+        for sep, word in ((",", "commas"), (";", "semicolons")):
+            if sep in lines[0]:
+                raise error(f"{path}: the header line has no tab but {lines[0].count(sep)} {word} "
+                            f"({lines[0][:60]!r}); a BIDS TSV separates its columns by tabs; {fix} (tab-separated)")
+    repeated = sorted({name for name in header if header.count(name) > 1})
+    if repeated:
+        raise error(f"{path}: column(s) {repeated} appear more than once in the header line; keep one column of "
+                    f"each name ({fix})")
+    # a row with one cell more than the header would make a table reader take the first column as row
+    # labels (and shift every column); blank lines are skipped, as the reader does
+    row = 0
+    for line in lines[1:]:
+        if not line.strip():
+            continue
+        row += 1
+        n_cells = line.count("\t") + 1
+        if n_cells != len(header):
+            raise error(f"{path}: data row {row} (1-based, header line not counted) has {n_cells} tab-separated "
+                        f"cells, the header line {len(header)}; give every row one cell per column (n/a for a "
+                        f"missing value) ({fix})")
+    try:
         return read_tsv(path)
     except (OSError, UnicodeDecodeError, pd.errors.ParserError) as exc:
-        raise error(f"{path}: cannot read as a tab-separated table with a header line ({exc}); {fix}") from exc
+        reason = " ".join(str(exc).split())
+        raise error(f"{path}: cannot read as a tab-separated table with a header line ({reason}); {fix}") from exc
 
 
 def read_numeric_tsv(path: str | os.PathLike[str]) -> tuple[list[str], np.ndarray]:

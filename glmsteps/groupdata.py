@@ -4,7 +4,7 @@ This module reads the files the group steps need (subjects' combined effect
 and variance maps with their sidecars, ``participants.tsv``), validates them
 up front and assembles one :class:`GroupData` for the maths of
 :mod:`glmsteps.group` and :mod:`glmsteps.permutation`. Both group jobs
-(``glmsteps.jobs.group`` and ``glmsteps.jobs.group_permutation``) call
+(``glmsteps.jobs.group_model`` and ``glmsteps.jobs.group_permutation``) call
 :func:`load_group_data`, so they analyse exactly the same subjects and voxels.
 
 Subjects left out (each with its reason, recorded in every group sidecar and
@@ -41,21 +41,16 @@ import pandas as pd
 from . import group as gm
 from . import stats
 from .errors import GlmstepsWarning, GroupError
-from .fileio import read_json, read_tsv
+from .fileio import read_json, read_user_tsv
 from .harmonise import harmonise_site_effects, harmonise_variances
 from .maps import load_map
 from .provenance import sidecar_path
+from .settings import GroupModelSettings
 
 LOGGER = logging.getLogger("glmsteps")
 
 #: Voxels per chunk of the group fit (bounds the work arrays of the mixed models).
 CHUNK_VOXELS = 4096
-#: Group model settings and their defaults (the defaults of config/schema.yaml's
-#: group_models; tests/test_jobs_group.py checks they agree).
-MODEL_DEFAULTS: dict[str, Any] = {"group_column": "group", "pair_column": "pair", "covariates": [],
-                                  "site_column": "site", "site_as_covariate": True, "estimation": "ols",
-                                  "harmonise_sites": False, "mask_fraction": 1.0, "tail": "two-sided"}
-MODEL_KEYS: tuple[str, ...] = ("design", *MODEL_DEFAULTS)
 #: Longest list of voxels written to a sidecar (e.g. where REML did not converge).
 MAX_LISTED_VOXELS = 1000
 
@@ -83,7 +78,7 @@ class GroupData:
     contrast_name : str
     sites : list of str
         Site of each kept subject (``"all"`` without a site column).
-    settings : dict
+    settings : GroupModelSettings
         The model settings with defaults filled in.
     excluded : list of dict
         ``{"subject", "reason"}`` of every subject left out.
@@ -105,7 +100,7 @@ class GroupData:
     c: npt.NDArray[np.float64]
     contrast_name: str
     sites: list[str]
-    settings: dict[str, Any]
+    settings: GroupModelSettings
     excluded: list[dict[str, str]] = field(default_factory=list)
     task: str | None = None
     harmonised: bool = False
@@ -121,57 +116,16 @@ class GroupData:
 # settings
 # ---------------------------------------------------------------------------
 
-def model_settings(params: Mapping[str, Any]) -> dict[str, Any]:
-    """The group model settings with defaults, validated (GroupError on a bad value)."""
-    if "design" not in params:
-        raise GroupError(f"group params: 'design' is missing; set it to one of {list(gm.DESIGNS)}")
-    settings = dict(MODEL_DEFAULTS)
-    settings.update({k: params[k] for k in MODEL_KEYS if k in params})
-    if settings["design"] not in gm.DESIGNS:
-        raise GroupError(f"group params: design {settings['design']!r} is unknown; use one of {list(gm.DESIGNS)}")
-    if settings["estimation"] not in gm.ESTIMATIONS:
-        raise GroupError(f"group params: estimation {settings['estimation']!r} is unknown; "
-                         f"use one of {list(gm.ESTIMATIONS)}")
-    if settings["tail"] not in stats.TAILS:
-        raise GroupError(f"group params: tail {settings['tail']!r} is unknown; use one of {list(stats.TAILS)}")
-    fraction = settings["mask_fraction"]
-    if isinstance(fraction, bool) or not isinstance(fraction, (int, float)) or not 0 < float(fraction) <= 1:
-        raise GroupError(f"group params: mask_fraction is {fraction!r}; use a number in (0, 1]")
-    covariates = settings["covariates"] or []
-    if isinstance(covariates, str) or not all(isinstance(c, str) for c in covariates):
-        raise GroupError(f"group params: covariates is {covariates!r}; give a list of participants column names")
-    settings["covariates"] = list(covariates)
-    for key in ("site_as_covariate", "harmonise_sites"):
-        if not isinstance(settings[key], bool):
-            raise GroupError(f"group params: {key} is {settings[key]!r}; use true or false")
-    site = settings["site_column"]
-    if site is not None and (not isinstance(site, str) or not site):
-        raise GroupError(f"group params: site_column is {site!r}; give a participants column name, or null for "
-                         "a single-site study")
-    if site is None and settings["harmonise_sites"]:
-        raise GroupError("group params: harmonise_sites needs a site column but site_column is null; set "
-                         "site_column to the participants column of sites, or set harmonise_sites: false")
-    needs = {"two_sample": ("group_column",), "paired": ("group_column", "pair_column")}.get(settings["design"], ())
-    for key in ("group_column", "pair_column"):
-        if key not in needs:
-            settings[key] = None                     # only the columns the design uses
-        elif not isinstance(settings[key], str) or not settings[key]:
-            raise GroupError(f"group params: design {settings['design']} needs {key} (a participants column), "
-                             f"found {settings[key]!r}; set it")
-    return settings
-
-
-def contrast_spec(params: Mapping[str, Any], wildcards: Mapping[str, str]) -> tuple[str, dict[str, float]]:
-    """The job's group contrast ``(name, weights)`` from params (checked against the wildcard)."""
-    spec = params.get("contrast")
-    if not isinstance(spec, Mapping) or "name" not in spec or not isinstance(spec.get("weights"), Mapping):
-        raise GroupError(f"group params: contrast is {spec!r}; give {{name: ..., weights: {{column: weight}}}}")
-    name = str(spec["name"])
+def group_settings(params: Mapping[str, Any] | GroupModelSettings,
+                   wildcards: Mapping[str, str]) -> GroupModelSettings:
+    """The model's settings (:class:`glmsteps.settings.GroupModelSettings`), its group contrast checked
+    against the job's ``group_contrast`` wildcard."""
+    settings = params if isinstance(params, GroupModelSettings) else GroupModelSettings.from_params(params)
     wanted = wildcards.get("group_contrast")
-    if wanted is not None and str(wanted) != name:
-        raise GroupError(f"group params: contrast name {name!r} differs from the group_contrast wildcard "
-                         f"{wanted!r}; the rule must pass the contrast it names")
-    return name, {str(k): v for k, v in spec["weights"].items()}
+    if wanted is not None and str(wanted) != settings.contrast.name:
+        raise GroupError(f"group params: contrast name {settings.contrast.name!r} differs from the group_contrast "
+                         f"wildcard {wanted!r}; the rule must pass the contrast it names")
+    return settings
 
 
 # ---------------------------------------------------------------------------
@@ -245,10 +199,7 @@ def _maps_by_subject(paths: Sequence[str], kind: str) -> dict[str, SubjectMap]:
 
 def read_participants(path: str, columns: Sequence[str]) -> pd.DataFrame:
     """participants.tsv indexed by subject label (without ``sub-``), checking the needed columns."""
-    try:
-        table = read_tsv(path)
-    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
-        raise GroupError(f"{path}: cannot read participants table ({exc}); give a tab-separated file") from exc
+    table = read_user_tsv(path, GroupError, "save it as a BIDS participants table")
     if "participant_id" not in table.columns:
         raise GroupError(f"{path}: no participant_id column (found {list(table.columns)}); add the BIDS column")
     ids = table["participant_id"].astype(str).map(normalise_subject)
@@ -323,8 +274,8 @@ def load_group_data(inputs: Mapping[str, Any], params: Mapping[str, Any],
     inputs : mapping
         ``effect`` and ``variance`` (lists of subject-level maps with JSON
         sidecars) and ``participants`` (participants.tsv).
-    params : mapping
-        The group model settings (:data:`MODEL_KEYS`) and ``contrast``.
+    params : mapping or GroupModelSettings
+        The group model settings and ``contrast`` (the job's params, or the settings made from them).
     wildcards : mapping
         ``group_contrast`` (checked against the contrast's name).
 
@@ -339,21 +290,26 @@ def load_group_data(inputs: Mapping[str, Any], params: Mapping[str, Any],
     harmonisation, when requested, is applied here so both group jobs analyse
     the same data, and the variances are rescaled with the effects.
     """
-    settings = model_settings(params)
-    contrast_name, weights = contrast_spec(params, wildcards)
+    settings = group_settings(params, wildcards)
+    contrast_name, weights = settings.contrast.name, settings.contrast.weights
     effects = _as_list(inputs["effect"])
     variances = _as_list(inputs["variance"])
     if not effects:
         raise GroupError("group inputs: no effect maps; the group step needs one per subject")
     participants = str(inputs["participants"])
-    site_column = settings["site_column"]
-    used = [c for c in (settings["group_column"], settings["pair_column"], *settings["covariates"]) if c]
+    site_column = settings.site_column
+    used = [c for c in (settings.group_column, settings.pair_column, *settings.covariates) if c]
     table = read_participants(participants, used)
     if site_column and site_column not in table.columns:
-        if settings["harmonise_sites"]:
+        if settings.harmonise_sites:
             raise GroupError(f"{participants}: site column {site_column!r} is absent; add it or set "
                              "harmonise_sites: false")
-        warnings.warn(f"{participants}: no site column {site_column!r}; site is not modelled "
+        if settings.site_as_covariate:
+            # modelling site without its column would silently fit another model than the config asks for
+            raise GroupError(f"{participants}: site column {site_column!r} is absent, so site cannot be modelled "
+                             "(site_as_covariate); add the column, or set site_column: null for a single-site "
+                             "study")
+        warnings.warn(f"{participants}: no site column {site_column!r}; the site QC treats the study as one site "
                       "(add the column, or set site_column: null for a single-site study)",
                       GlmstepsWarning, stacklevel=2)
         site_column = None
@@ -391,8 +347,8 @@ def load_group_data(inputs: Mapping[str, Any], params: Mapping[str, Any],
         raise GroupError(f"group: no subject is left ({len(excluded)} excluded; reasons: {'; '.join(reasons)}); "
                          "check participant_id against the maps' subjects and the subject-level sidecars")
     rows = table.loc[kept]
-    design = gm.build_group_design(rows, settings["design"], settings["group_column"], settings["pair_column"],
-                                   settings["covariates"], site_column, settings["site_as_covariate"],
+    design = gm.build_group_design(rows, settings.design, settings.group_column, settings.pair_column,
+                                   settings.covariates, site_column, settings.site_as_covariate,
                                    source=participants)
     c = gm.contrast_vector(weights, design.names, contrast_name)
     if not gm.is_estimable(design.matrix, c):
@@ -414,17 +370,17 @@ def load_group_data(inputs: Mapping[str, Any], params: Mapping[str, Any],
     effect_all = np.vstack(effect_maps).astype(np.float64)
     variance_all = np.vstack(variance_maps).astype(np.float64)
     present = np.isfinite(effect_all)
-    if settings["estimation"] != "ols":
+    if settings.estimation != "ols":
         present &= np.isfinite(variance_all) & (variance_all > 0)
-    loose = group_mask(present, settings["mask_fraction"], complete_only=False)
-    in_mask = group_mask(present, settings["mask_fraction"], complete_only=settings["harmonise_sites"])
+    loose = group_mask(present, settings.mask_fraction, complete_only=False)
+    in_mask = group_mask(present, settings.mask_fraction, complete_only=settings.harmonise_sites)
     dropped = int(np.sum(loose & ~in_mask))
     if dropped:
         warnings.warn(f"group: {dropped} mask voxels lack some subjects and are left out because site "
                       "harmonisation needs complete data", GlmstepsWarning, stacklevel=2)
     voxel_index = np.flatnonzero(in_mask).astype(np.int64)
     if voxel_index.size == 0:
-        raise GroupError(f"group: no voxel is present in {settings['mask_fraction']:.0%} of the {len(kept)} "
+        raise GroupError(f"group: no voxel is present in {settings.mask_fraction:.0%} of the {len(kept)} "
                          "kept subjects; check the maps' masks or lower mask_fraction")
     Y = np.where(present[:, voxel_index], effect_all[:, voxel_index], np.nan)
     V = np.where(present[:, voxel_index], variance_all[:, voxel_index], np.nan)
@@ -434,7 +390,7 @@ def load_group_data(inputs: Mapping[str, Any], params: Mapping[str, Any],
     per_subject = pd.DataFrame({"subject": kept, "site": sites, "mean_effect": means_entered})
     site_qc: dict[str, Any] = {"as_entered": _records(qc_entered)}
     harmonised = False
-    if settings["harmonise_sites"]:
+    if settings.harmonise_sites:
         keep_cols = [j for j, r in enumerate(design.roles) if r in ("model", "covariate")]
         result = harmonise_site_effects(Y, sites, design.matrix[:, keep_cols])
         Y = result.adjusted
@@ -467,7 +423,7 @@ def fit_group_chunks(data: GroupData, chunk_voxels: int = CHUNK_VOXELS) -> gm.Co
     parts = []
     bad = 0
     n_vox = data.Y.shape[1]
-    estimation = data.settings["estimation"]
+    estimation = data.settings.estimation
     for start in range(0, n_vox, chunk_voxels):
         stop = min(start + chunk_voxels, n_vox)
         fit, n_bad = gm.fit_contrast_with_missing(data.design.matrix, data.Y[:, start:stop],
@@ -505,13 +461,13 @@ def group_summary(data: GroupData, wildcards: Mapping[str, str]) -> dict[str, An
         "model": wildcards.get("model"), "first_level_contrast": wildcards.get("contrast"),
         "group_contrast": data.contrast_name,
         "contrast_weights": {n: float(w) for n, w in zip(data.design.names, data.c) if w != 0},
-        "design": data.settings["design"], "design_columns": data.design.names, "design_roles": data.design.roles,
-        "estimation": data.settings["estimation"], "tail": data.settings["tail"],
+        "design": data.settings.design, "design_columns": data.design.names, "design_roles": data.design.roles,
+        "estimation": data.settings.estimation, "tail": data.settings.tail,
         "n_subjects": len(data.subjects), "subjects": data.subjects,
         "n_excluded": len(data.excluded), "excluded_subjects": data.excluded,
         "site_harmonisation": ("empirical-Bayes site harmonisation (Johnson, Li & Rabinovic 2007); first-level "
                                "variances rescaled with the effects" if data.harmonised else None),
-        "mask_fraction": float(data.settings["mask_fraction"]), "voxels_in_mask": data.voxels_in_mask,
+        "mask_fraction": float(data.settings.mask_fraction), "voxels_in_mask": data.voxels_in_mask,
     }
 
 
@@ -520,7 +476,7 @@ def fit_summary(data: GroupData, fit: gm.ContrastFit) -> dict[str, Any]:
     finite_dof = fit.dof[np.isfinite(fit.dof)]
     summary: dict[str, Any] = {"dof_min": float(finite_dof.min()) if finite_dof.size else None,
                                "dof_max": float(finite_dof.max()) if finite_dof.size else None}
-    estimation = data.settings["estimation"]
+    estimation = data.settings.estimation
     if estimation == "ols":
         summary["inference"] = "OLS t on n - rank(X) degrees of freedom (summary statistics)"
         return summary

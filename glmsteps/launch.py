@@ -54,14 +54,14 @@ KILL_GRACE_SECONDS = 10.0
 SEPARATOR = ":::"
 #: Module of each step's ``run`` function.
 STEP_MODULES: dict[str, str] = {
-    "validate_events": "glmsteps.jobs.events",
-    "select_confounds": "glmsteps.jobs.confounds",
-    "build_design": "glmsteps.jobs.design",
+    "validate_events": "glmsteps.jobs.validate_events",
+    "select_confounds": "glmsteps.jobs.select_confounds",
+    "build_design": "glmsteps.jobs.build_design",
     "fit": "glmsteps.jobs.fit",
     "contrast": "glmsteps.jobs.contrast",
-    "combine_runs": "glmsteps.jobs.combine",
+    "combine_runs": "glmsteps.jobs.combine_runs",
     "threshold": "glmsteps.jobs.threshold",
-    "group_model": "glmsteps.jobs.group",
+    "group_model": "glmsteps.jobs.group_model",
     "group_permutation": "glmsteps.jobs.group_permutation",
     "index": "glmsteps.jobs.index",
     "report": "glmsteps.jobs.report",

@@ -24,6 +24,7 @@ import json
 import os
 import queue
 import threading
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal
@@ -32,7 +33,7 @@ import numpy as np
 import numpy.typing as npt
 
 from .acquisition import RunTiming, choose_repetition_time
-from .errors import DataError
+from .errors import DataError, GlmstepsWarning
 
 
 def _decompression_errors() -> tuple[type[BaseException], ...]:
@@ -213,6 +214,11 @@ def read_mask(path: str | os.PathLike[str]) -> tuple[npt.NDArray[np.bool_], npt.
     ------
     DataError
         If the file is unreadable, not 3D, or the mask is empty.
+
+    Warns
+    -----
+    GlmstepsWarning
+        The mask holds fractional values (a probability map, not a mask).
     """
     img = _load_header(path)
     data = np.asarray(img.dataobj)
@@ -223,6 +229,13 @@ def read_mask(path: str | os.PathLike[str]) -> tuple[npt.NDArray[np.bool_], npt.
     mask = np.isfinite(data) & (data != 0)
     if not mask.any():
         raise DataError(f"{path}: mask is empty (no non-zero voxel); pass the brain mask of this run")
+    inside = data[mask]
+    fractional = inside != np.round(inside)
+    if fractional.any():
+        # a probability map passed as the mask would put nearly every voxel in it
+        warnings.warn(f"{path}: the mask holds fractional values ({int(fractional.sum())} voxels, e.g. "
+                      f"{float(inside[fractional][0]):g}); every voxel with a non-zero value is inside, so "
+                      "pass a binary mask (threshold a probability map first)", GlmstepsWarning, stacklevel=2)
     return mask, np.asarray(img.affine, dtype=np.float64)
 
 

@@ -73,9 +73,9 @@ def check_names(config: Mapping[str, Any]) -> None:
     """
     def names_ok(kind: str, names: Sequence[str]) -> None:
         for name in names:
-            if not NAME_PATTERN.match(name):
+            if not isinstance(name, str) or not NAME_PATTERN.match(name):
                 raise ConfigError(f"{kind} name {name!r} must be letters, digits and underscores, "
-                                  "starting with a letter or digit")
+                                  "starting with a letter or digit (quote a number in YAML)")
 
     contrasts = config["contrasts"]
     t_contrasts = [name for name, spec in contrasts.items() if "weights" in spec]

@@ -14,7 +14,7 @@ from glmsteps import workflow_plan as plan
 from glmsteps.bids import check_pattern, discover_runs
 from glmsteps.errors import ConfigError, GlmstepsError
 from glmsteps.launch import command_template, start_server
-from glmsteps.precheck import check_config_contrasts
+from glmsteps.precheck import check_config_contrasts, check_config_start
 from glmsteps.renames import check_renamed
 from glmsteps.report.summary import print_run_summary
 from glmsteps.volumes import bids_sidecar_of
@@ -93,6 +93,7 @@ if workflow.is_main_process:
     # contrast keys against the conditions of the events files, before any job (reads only the condition
     # column of each events TSV; cluster jobs re-parsing this file skip it)
     try:
+        check_config_start(config, config_files=workflow.configfiles)  # names, output_dir, repeated keys
         check_config_contrasts(config, PLAN.events_files())
     except GlmstepsError as _exc:
         sys.stderr.write(f"glmsteps: {type(_exc).__name__}: {_exc}\n")
@@ -112,7 +113,7 @@ wildcard_constraints:
     model="[A-Za-z0-9_]+",
     group_contrast="[A-Za-z0-9_]+",
 
-#: Per-rule constraints: rules that only make sense for t (or F) contrasts use these.
+#: Wildcard constraints for the rules that only make sense for t (or F) contrasts.
 T_CONTRAST = _alternation(T_CONTRASTS)
 F_CONTRAST = _alternation(F_CONTRASTS)
 

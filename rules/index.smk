@@ -9,6 +9,7 @@ rule index:
         maps=indexed_maps(),
     output:
         index=OUT + "/index.tsv",
+        description=OUT + "/dataset_description.json",
     log:
         LOG_DIR + "/index.log",
     script:

@@ -17,7 +17,7 @@ from statsmodels.tsa.arima_process import ArmaProcess
 
 from glmsteps import estimation as est
 from glmsteps import fitting
-from glmsteps.jobs.fit import DEFAULTS
+from glmsteps.settings import FitSettings
 
 N_SCANS = 300
 VOXEL_MM = 3.0
@@ -107,14 +107,15 @@ def true_acf(name: str, n_lags: int) -> np.ndarray:
 
 def noise_settings(model: str, design: est.DesignFactors, fwhm_mm: float | None = None,
                    order: int | None = None) -> fitting.NoiseSettings:
-    """The fit step's settings for a model (its defaults: ``glmsteps.jobs.fit.DEFAULTS``)."""
-    order = est.check_ar_order(design, order or DEFAULTS["ar_order"]) if model == "arp" else 1
+    """The fit step's settings for a model (its defaults: ``glmsteps.settings.FitSettings``, the schema's)."""
+    defaults = FitSettings.defaults()
+    order = est.check_ar_order(design, order or defaults.ar_order) if model == "arp" else 1
     fwhm = fwhm_mm
     if fwhm is None:
-        fwhm = DEFAULTS["ar_smoothing_fwhm_mm"]
+        fwhm = defaults.ar_smoothing_fwhm_mm
     if fwhm is None:
         fwhm = est.default_smoothing_fwhm_mm(np.full(3, VOXEL_MM))   # the fit step's rule
-    return fitting.NoiseSettings(model=model, order=order, smoothing_fwhm_mm=fwhm, bin_width=DEFAULTS["ar_bin_width"])
+    return fitting.NoiseSettings(model=model, order=order, smoothing_fwhm_mm=fwhm, bin_width=defaults.ar_bin_width)
 
 
 @dataclass(frozen=True)

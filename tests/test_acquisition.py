@@ -18,9 +18,9 @@ import pytest
 
 from glmsteps.acquisition import check_slice_timing, choose_repetition_time
 from glmsteps.errors import ConfigError, DataError, GlmstepsWarning
-from glmsteps.jobs import confounds as confounds_job
-from glmsteps.jobs import design as design_job
-from glmsteps.jobs import events as events_job
+from glmsteps.jobs import select_confounds as confounds_job
+from glmsteps.jobs import build_design as design_job
+from glmsteps.jobs import validate_events as events_job
 from glmsteps.volumes import (bids_sidecar_of, header_repetition_time_s, header_time_unit_known, read_bold_header,
                               read_run_timing)
 

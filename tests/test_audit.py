@@ -135,7 +135,7 @@ def test_audit_lists_every_step_and_raw_input_once(tmp_path: Path) -> None:
 
 
 def test_plain_words_known_and_unknown_keys() -> None:
-    # plain-word rendering of the settings (our own label table, glmsteps.audit.SETTING_LABELS)
+    # plain-word rendering of the settings (labels: config/schema.yaml's titles, glmsteps.settings.setting_labels)
     words = audit.describe_params({"autocorrelation": "ar1", "ar_smoothing_fwhm_mm": 0})
     assert "; ".join(words) == "autocorrelation model: ar1; smoothing of AR coefficients: 0 mm FWHM"
     # unknown keys fall back to the key itself; nested sections get dotted keys
@@ -412,3 +412,11 @@ def test_diff_never_counts_a_path_alone_as_a_difference(tmp_path, capsys):
     same = _fan_in_chain(tmp_path / "c", FIT_PARAMS, data_folder="moved")
     code, out, _ = run_cli(capsys, "diff", a, same)
     assert code == 0 and "identical lineage" in out
+
+
+def test_a_null_setting_is_shown_with_what_it_means() -> None:
+    # a null AR smoothing is twice the voxel size (config/schema.yaml null_means), never "none"
+    lines = audit.describe_params({"ar_smoothing_fwhm_mm": None, "autocorrelation": "arp"})
+    assert "smoothing of AR coefficients: twice the run's voxel size (the value used is in fit.json)" in lines
+    assert not any(line.endswith(": none") for line in lines)
+    assert audit.describe_params({"ar_smoothing_fwhm_mm": 0}) == ["smoothing of AR coefficients: 0 mm FWHM"]

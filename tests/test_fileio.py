@@ -43,7 +43,7 @@ def test_atomic_path_leaves_nothing_on_error(tmp_path):
 
 def test_design_step_reads_a_confounds_table_without_columns(tmp_path):
     """No confound selected and no censoring: the design step still sees one row per volume."""
-    from glmsteps.jobs.design import read_confounds
+    from glmsteps.jobs.build_design import read_confounds
 
     write_tsv(tmp_path / "c.tsv", pd.DataFrame(index=range(7)))
     assert read_confounds(tmp_path / "c.tsv", 7).shape == (7, 0)

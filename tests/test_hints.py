@@ -20,8 +20,8 @@ ROOT = Path(__file__).resolve().parents[1]
 SCHEMA = yaml.safe_load((ROOT / "config" / "schema.yaml").read_text())
 MODULES = ["glmsteps/events.py", "glmsteps/confounds.py", "glmsteps/design.py", "glmsteps/hrf.py",
            "glmsteps/bids.py", "glmsteps/volumes.py", "glmsteps/acquisition.py", "glmsteps/renames.py",
-           "glmsteps/precheck.py", "glmsteps/jobs/events.py", "glmsteps/jobs/confounds.py",
-           "glmsteps/jobs/design.py", "glmsteps/plots/confounds.py"]
+           "glmsteps/precheck.py", "glmsteps/configfile.py", "glmsteps/jobs/validate_events.py", "glmsteps/jobs/select_confounds.py",
+           "glmsteps/jobs/build_design.py", "glmsteps/plots/confounds.py"]
 SECTIONS = ("inputs", "acquisition", "events", "confounds", "design", "fit", "contrasts", "contrast_options",
             "thresholds", "group_models")
 KEY = re.compile(rf"(?<![.\w])(?:{'|'.join(SECTIONS)})(?:\.[A-Za-z_][A-Za-z0-9_]*)+")

@@ -18,7 +18,7 @@ from scipy import stats as sps
 
 from glmsteps.errors import ContrastError, DataError
 from glmsteps.fileio import read_tsv, save_nifti, write_json, write_tsv
-from glmsteps.jobs import combine as combine_job
+from glmsteps.jobs import combine_runs as combine_job
 from glmsteps.jobs import contrast as contrast_job
 from glmsteps.jobs import threshold as threshold_job
 

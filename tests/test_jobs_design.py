@@ -13,7 +13,7 @@ import pytest
 from scipy import stats
 
 from glmsteps.errors import ConfigError, DesignError
-from glmsteps.jobs import design as job
+from glmsteps.jobs import build_design as job
 
 N_VOLUMES = 60
 DROP = 3
@@ -22,7 +22,7 @@ TR_S = 2.0
 
 def default_params(**changes: Any) -> dict[str, Any]:
     params: dict[str, Any] = {
-        "hrf": "double_gamma", "fir_bins": 0, "fir_bin_width_s": 0.0, "time_resolution_s": 0.1,
+        "hrf": "double_gamma", "fir_bins": 10, "fir_bin_width_s": 2.0, "time_resolution_s": 0.1,
         "drift_basis": "cosine", "cutoff_s": 128.0, "legendre_order": 3,
         "volume_time_fraction": 0.5, "conditions": ["faces", "houses"], "modulators": {"faces": ["rating"]},
     }

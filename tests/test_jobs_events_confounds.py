@@ -14,8 +14,8 @@ import pytest
 
 from glmsteps.errors import ConfigError, ConfoundsError, DataError, EventsError
 from glmsteps.fileio import read_tsv
-from glmsteps.jobs import confounds as confounds_job
-from glmsteps.jobs import events as events_job
+from glmsteps.jobs import select_confounds as confounds_job
+from glmsteps.jobs import validate_events as events_job
 from glmsteps.jobs.common import run_script
 from glmsteps.provenance import read_record
 

@@ -19,7 +19,7 @@ from glmsteps import clusters, groupdata
 from glmsteps.errors import GroupError
 from glmsteps.fileio import read_tsv, save_nifti, write_json, write_tsv
 from glmsteps.harmonise import harmonise_site_effects
-from glmsteps.jobs import group as group_job
+from glmsteps.jobs import group_model as group_job
 from glmsteps.jobs import group_permutation as perm_job
 from glmsteps.jobs import threshold as threshold_job
 
@@ -371,22 +371,6 @@ def _schema() -> dict:
     return yaml.safe_load(SCHEMA.read_text())
 
 
-def test_step_defaults_are_the_schema_defaults() -> None:
-    schema = _schema()
-    model_props = schema["properties"]["group_models"]["additionalProperties"]["properties"]
-    for key, value in groupdata.MODEL_DEFAULTS.items():
-        assert model_props[key]["default"] == value, key
-    perm = next(s for s in model_props["permutation"]["oneOf"] if s.get("type") == "object")["properties"]
-    assert set(perm) == set(perm_job.PERMUTATION_DEFAULTS)
-    for key, value in perm_job.PERMUTATION_DEFAULTS.items():
-        assert perm[key]["default"] == value, key
-    assert (perm["n_permutations"]["minimum"], perm["n_permutations"]["maximum"]) == perm_job.N_PERMUTATIONS_RANGE
-    setting = schema["definitions"]["threshold_setting"]["properties"]
-    assert setting["subpeaks"]["default"] == clusters.DEFAULT_SUBPEAKS
-    assert setting["subpeak_spacing_mm"]["default"] == clusters.DEFAULT_SUBPEAK_SPACING_MM
-    assert setting["subpeaks"]["maximum"] == perm["subpeaks"]["maximum"] == 20
-
-
 def _minimal_config(model_settings: dict) -> dict:
     return {"inputs": {"root": ".", "bold": "b", "events": "e", "confounds": "c", "mask": "m"},
             "contrasts": {"faces": {"weights": {"faces": 1}}},
@@ -404,8 +388,9 @@ def test_error_and_warning_hints_name_settings_the_schema_accepts(tmp_path: Path
     write_tsv(no_site["participants"], table)
     group_job.run(no_site, outputs_in(tmp_path / "g1"), one_sample(), {**WILDCARDS, "group_contrast": "mean"})
     hints += json.loads((tmp_path / "g1" / "t.json").read_text())["warnings"]      # warnings, as recorded
-    for params, data in ((one_sample(harmonise_sites=True), no_site), (one_sample(harmonise_sites=True,
-                                                                                  site_column=None), inputs)):
+    for params, data in (({**one_sample(), "site_as_covariate": True}, no_site),
+                         (one_sample(harmonise_sites=True), no_site),
+                         (one_sample(harmonise_sites=True, site_column=None), inputs)):
         with pytest.raises(GroupError) as info:
             group_job.run(data, outputs_in(tmp_path / "g2"), params, {**WILDCARDS, "group_contrast": "mean"})
         hints.append(str(info.value))

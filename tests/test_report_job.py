@@ -7,12 +7,13 @@ import yaml
 
 from glmsteps.errors import ConfigError
 from glmsteps.jobs import report as job
+from glmsteps.settings import ReportSettings
 from workflow_helpers import REPO
 
 
 def test_defaults_are_the_schemas():
     schema = yaml.safe_load((REPO / "config" / "schema.yaml").read_text())["properties"]["report"]["properties"]
-    settings = job.check_params({})
+    settings = ReportSettings.from_params({})
     for key, spec in schema.items():
         assert getattr(settings, key) == spec["default"], key
 
@@ -23,7 +24,7 @@ def test_defaults_are_the_schemas():
                                          ({"outlier_mads": "many"}, "report")])
 def test_bad_settings_are_one_line_config_errors(params, key):
     with pytest.raises(ConfigError) as err:
-        job.check_params(params)
+        ReportSettings.from_params(params)
     assert key in str(err.value) and "\n" not in str(err.value)
 
 

@@ -10,11 +10,11 @@ from numpy.testing import assert_allclose
 
 from glmsteps import estimation as est
 from glmsteps import fitting
-from glmsteps.jobs import fit as fit_job
+from glmsteps.settings import FitSettings
 from glmsteps.report import qc
 
 FIT_PARAMS = {"scaling": "percent", "grand_mean_value": 100.0, "autocorrelation": "ols", "ar_order": 1,
-              "ar_smoothing_fwhm_mm": 0.0, "ar_bin_width": 0.01, "repetition_time_s": 2.0}
+              "ar_smoothing_fwhm_mm": 0.0, "ar_bin_width": 0.01}
 
 
 def _design(n: int) -> tuple[np.ndarray, list[str]]:
@@ -26,7 +26,7 @@ def _design(n: int) -> tuple[np.ndarray, list[str]]:
 
 def _fit(Y: np.ndarray, X: np.ndarray, roles: list[str], **params) -> tuple[fitting.VoxelFit, np.ndarray, np.ndarray]:
     """Fit Y as the fit job does (its scale factors and its chunked voxel loop)."""
-    settings = fit_job.check_params({**FIT_PARAMS, **params})
+    settings = FitSettings.from_params({**FIT_PARAMS, **params})
     design = est.prepare_design(X, roles)
     mean = Y.mean(axis=0)
     factors = est.compute_scale_factors(mean, settings.scaling, settings.grand_mean_value)

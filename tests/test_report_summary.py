@@ -62,7 +62,29 @@ def test_summary_prefers_the_reports_counts(tmp_path):
     assert "runs excluded: 1 (sub-01 task-beacon_run-2: 40 % censored)" in text
     assert "warnings: fit 2 (in the sidecars and the report)" in text
     assert f"file://{os.path.abspath(out / 'report' / 'index.html')}" in text
-    assert len(lines) == 5
+    # stopped, but no job log of this run records an error: the summary says where to look
+    assert "failed: see Snakemake's error above" in text
+    assert len(lines) == 6
+
+
+def test_a_stopped_run_names_each_failed_job_its_error_and_log(tmp_path):
+    out = _results(tmp_path, with_report=False)
+    logs = out / "logs" / "sub-02" / "task-beacon_run-1"
+    logs.mkdir(parents=True)
+    bad = logs / "fit.log"
+    bad.write_text("2026-12-03 13:34:31,779 INFO reading bold\n"
+                   "2026-12-03 13:34:35,144 ERROR DataError: sub-02_bold.nii.gz: cannot decompress; copy it again\n"
+                   "2026-12-03 13:34:35,145 ERROR second error line\n")
+    (logs / "build_design.log").write_text("2026-12-03 13:34:30,000 INFO done in 2.07 s\n")
+    old = logs / "select_confounds.log"                  # an error of an earlier run: not this run's
+    old.write_text("2026-12-02 10:00:00,000 ERROR ConfoundsError: old\n")
+    then = time.time() - 3600
+    os.utime(old, (then, then))
+    s = collect_run_summary(out, started=time.time() - 60)
+    assert s.failed_jobs == ((os.fspath(bad), "DataError: sub-02_bold.nii.gz: cannot decompress; copy it again"),)
+    text = format_run_summary(s, ok=False)
+    assert f"  failed: {bad}: DataError: sub-02_bold.nii.gz: cannot decompress; copy it again" in text
+    assert "see Snakemake's error above" not in text and "ConfoundsError" not in text
 
 
 def test_many_excluded_runs_are_counted_not_listed():

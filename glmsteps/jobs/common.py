@@ -66,12 +66,19 @@ def _plain(value: Any) -> Any:
 
 
 def setup_logging(log_path: str | None) -> logging.Logger:
-    """Log to the job's log file (and stderr) with timestamps."""
+    """Log to the job's log file with timestamps; warnings and errors go to stderr as well.
+
+    With a log file, stderr (Snakemake's terminal) gets only warnings and
+    errors, so a study's hundreds of jobs do not fill it with progress lines;
+    without one, stderr gets everything.
+    """
     logger = logging.getLogger("glmsteps")
     logger.handlers.clear()
     logger.setLevel(logging.INFO)
     fmt = logging.Formatter("%(asctime)s %(levelname)s %(message)s")
-    handlers: list[logging.Handler] = [logging.StreamHandler(sys.stderr)]
+    terminal = logging.StreamHandler(sys.stderr)
+    terminal.setLevel(logging.WARNING if log_path else logging.INFO)
+    handlers: list[logging.Handler] = [terminal]
     if log_path:
         Path(log_path).parent.mkdir(parents=True, exist_ok=True)
         handlers.append(logging.FileHandler(log_path, mode="w", encoding="utf-8"))

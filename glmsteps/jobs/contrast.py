@@ -4,8 +4,9 @@ inputs
     ``fit``: the run's ``fit.h5``.
 params
     ``name`` (contrast name), ``definition`` (the config spec, see
-    :mod:`glmsteps.contrasts`), ``tail`` (t contrasts; overrides the
-    definition's tail when not None), ``skip_nonestimable`` (bool).
+    :mod:`glmsteps.contrasts`), ``tail`` (t contrasts; when not given, the
+    definition's tail), ``skip_nonestimable`` (bool):
+    :class:`glmsteps.settings.ContrastSettings`.
 wildcards
     ``subject``, ``run_id``, ``contrast``.
 outputs
@@ -30,6 +31,7 @@ from ..bids import parse_run_id
 from ..contrasts import MAP_KEYS, evaluate_contrast, contrast_matrix, parse_spec
 from ..errors import ConfigError, ContrastError
 from ..maps import map_description, save_map, statistic_intent
+from ..settings import ContrastSettings
 
 STEP = "contrast"
 
@@ -47,17 +49,6 @@ def check_output_keys(kind: str, outputs: Mapping[str, str], name: str) -> None:
     if set(outputs) != expected:
         raise ConfigError(f"contrast {name!r}: a {kind} contrast writes outputs {sorted(expected)}, "
                           f"the rule declares {sorted(outputs)}; fix the rule's outputs for this contrast kind")
-
-
-def contrast_settings(params: Mapping[str, Any]) -> tuple[str, Any, Any, bool]:
-    """name, definition, tail and skip_nonestimable from a contrast step's params (checked)."""
-    missing = [k for k in ("name", "definition") if k not in params]
-    if missing:
-        raise ConfigError(f"{STEP}: params lack {missing}; pass name, definition, tail, skip_nonestimable")
-    skip = params.get("skip_nonestimable", False)
-    if not isinstance(skip, bool):
-        raise ConfigError(f"contrast {params['name']!r}: skip_nonestimable must be true or false, found {skip!r}")
-    return str(params["name"]), params["definition"], params.get("tail"), skip
 
 
 def contrast_of_fit(fit: Any, spec: Any, skip: bool, run_label: str, fit_path: str
@@ -119,8 +110,9 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     """Compute and write one run's contrast maps (see the module docstring)."""
     from glmsteps.fitstore import read_fit
 
-    name, definition, tail, skip = contrast_settings(params)
-    spec = parse_spec(name, definition, tail)
+    settings = ContrastSettings.from_params(params)
+    name, skip = settings.name, settings.skip_nonestimable
+    spec = parse_spec(name, settings.definition, settings.tail)
     check_output_keys(spec.kind, outputs, name)
     key = parse_run_id(str(wildcards["subject"]), str(wildcards["run_id"]))
     fit = read_fit(inputs["fit"])

@@ -10,9 +10,9 @@ Params
     ``scaling`` (percent | grand_mean | none), ``grand_mean_value``,
     ``autocorrelation`` (ols | ar1 | arp), ``ar_order`` (1..12),
     ``ar_smoothing_fwhm_mm`` (>= 0), ``ar_bin_width``, ``non_finite_voxels``
-    (error | drop); the run's TR is read from the design summary (``repetition_time_s``, set by the TR rule of
-    ``glmsteps.acquisition``). Missing keys take the defaults of
-    ``config/schema.yaml`` (``DEFAULTS``).
+    (error | drop): :class:`glmsteps.settings.FitSettings` (missing keys take the defaults of
+    ``config/schema.yaml``); the run's TR is read from the design summary (``repetition_time_s``, set by
+    the TR rule of ``glmsteps.acquisition``).
 Outputs (named)
     ``fit`` (fit.h5, sidecar fit.json), ``mean``, ``residual_sd``, ``ar_coef``
     (NIfTI, each with its sidecar).
@@ -33,7 +33,7 @@ import time
 import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Literal
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -46,6 +46,7 @@ from ..fileio import read_json, read_numeric_tsv
 from ..fitstore import StoredFit, write_fit
 from ..fitting import NoiseSettings, VoxelFit, VoxelGrid, fit_voxels
 from ..maps import map_description, save_map, statistic_intent
+from ..settings import FitSettings
 from ..volumes import (AFFINE_TOLERANCE_MM, check_grid, read_bold_header, read_mask,
                        stream_masked)
 
@@ -53,25 +54,8 @@ STEP = "fit"
 #: Default number of voxels per chunk (override with the GLMSTEPS_CHUNK_VOXELS environment variable).
 DEFAULT_CHUNK_VOXELS = 4096
 _SUMMARY_KEYS = ("names", "roles", "conditions", "basis", "first_volume", "n_volumes", "excluded", "repetition_time_s")
-#: Defaults of the step's params: those of the ``fit`` section of config/schema.yaml (``tests/test_jobs_fit.py``).
-DEFAULTS: dict[str, Any] = {"scaling": "percent", "grand_mean_value": 100.0, "autocorrelation": "arp", "ar_order": 8,
-                            "ar_smoothing_fwhm_mm": None, "ar_bin_width": 0.01, "non_finite_voxels": "error"}
-NonFinitePolicy = Literal["error", "drop"]
 
 logger = logging.getLogger("glmsteps")
-
-
-@dataclass(frozen=True)
-class FitSettings:
-    """Checked step parameters."""
-
-    scaling: est.ScalingMethod
-    grand_mean_value: float
-    autocorrelation: est.NoiseModel
-    ar_order: int
-    ar_smoothing_fwhm_mm: float | None
-    ar_bin_width: float
-    non_finite_voxels: NonFinitePolicy
 
 
 def smoothing_fwhm_mm(settings: FitSettings, voxel_size_mm: npt.ArrayLike) -> float:
@@ -79,43 +63,6 @@ def smoothing_fwhm_mm(settings: FitSettings, voxel_size_mm: npt.ArrayLike) -> fl
     if settings.ar_smoothing_fwhm_mm is not None:
         return settings.ar_smoothing_fwhm_mm
     return est.default_smoothing_fwhm_mm(voxel_size_mm)
-
-
-def check_params(params: Mapping[str, Any]) -> FitSettings:
-    """Check the step's params; missing keys take their defaults (``DEFAULTS``).
-
-    Raises
-    ------
-    ConfigError
-    """
-    p = {**DEFAULTS, **dict(params)}
-    scaling = p["scaling"]
-    if scaling not in ("percent", "grand_mean", "none"):
-        raise ConfigError(f"config fit.scaling: expected percent, grand_mean or none, found {scaling!r}")
-    noise = p["autocorrelation"]
-    if noise not in ("ols", "ar1", "arp"):
-        raise ConfigError(f"config fit.autocorrelation: expected ols, ar1 or arp, found {noise!r}")
-    policy = p["non_finite_voxels"]
-    if policy not in ("error", "drop"):
-        raise ConfigError(f"config fit.non_finite_voxels: expected error or drop, found {policy!r}")
-    try:
-        gm = float(p["grand_mean_value"])
-        order = int(p["ar_order"])
-        fwhm = None if p["ar_smoothing_fwhm_mm"] is None else float(p["ar_smoothing_fwhm_mm"])
-        width = float(p["ar_bin_width"])
-    except (TypeError, ValueError) as exc:
-        raise ConfigError(f"config fit: a numeric setting is not a number ({exc}); fix the value") from exc
-    if not (gm > 0 and np.isfinite(gm)):
-        raise ConfigError(f"config fit.grand_mean_value: expected a positive number, found {gm}")
-    if not 1 <= order <= est.MAX_AR_ORDER:
-        raise ConfigError(f"config fit.ar_order: expected 1 to {est.MAX_AR_ORDER}, found {order}")
-    if fwhm is not None and not (fwhm >= 0 and np.isfinite(fwhm)):
-        raise ConfigError(f"config fit.ar_smoothing_fwhm_mm: expected a number >= 0 (mm), found {fwhm}")
-    if not 0 < width <= 0.1:
-        raise ConfigError(f"config fit.ar_bin_width: expected a number in (0, 0.1], found {width}")
-    return FitSettings(scaling=scaling, grand_mean_value=gm, autocorrelation=noise,
-                       ar_order=order if noise == "arp" else 1, ar_smoothing_fwhm_mm=fwhm, ar_bin_width=width,
-                       non_finite_voxels=policy)
 
 
 def chunk_voxels(threads: int = 1) -> int:
@@ -305,7 +252,7 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
         wildcards: Mapping[str, str], threads: int = 1) -> None:
     """Fit one run (see the module docstring for the interface)."""
     t_start = time.perf_counter()
-    settings = check_params(params)
+    settings = FitSettings.from_params(params)
     for key in ("bold", "mask", "design", "design_summary"):
         if key not in inputs:
             raise ConfigError(f"rule fit: input {key!r} is missing; name the inputs bold, mask, design, design_summary")

@@ -1,15 +1,16 @@
 """Group permutation step: family-wise error p maps for one group contrast.
 
 Inputs
-    Same as ``glmsteps.jobs.group`` (``effect``, ``variance``, ``participants``),
+    Same as ``glmsteps.jobs.group_model`` (``effect``, ``variance``, ``participants``),
     read and validated by the same library function
     (:func:`glmsteps.groupdata.load_group_data`).
 Params
     The group model keys (including ``tail``) plus ``contrast`` and
     ``permutation``: ``{"n_permutations", "seed", "cluster_forming_p", "tfce",
-    "tfce_step", "connectivity", "subpeaks", "subpeak_spacing_mm"}``; keys not
-    given take :data:`PERMUTATION_DEFAULTS`, which are config/schema.yaml's
-    defaults (tests/test_jobs_group.py checks they agree).
+    "tfce_step", "connectivity", "subpeaks", "subpeak_spacing_mm"}``
+    (:class:`glmsteps.settings.GroupModelSettings` and
+    :class:`glmsteps.settings.PermutationSettings`; keys not given take the
+    defaults of config/schema.yaml).
 Outputs
     ``p_fwe`` (voxelwise max-statistic FWE p), ``p_fwe_cluster`` (each voxel's
     cluster-extent FWE p; 1 at tested voxels outside every cluster),
@@ -41,60 +42,15 @@ import numpy as np
 
 from .. import permutation as pm
 from .. import stats
-from ..clusters import DEFAULT_SUBPEAK_SPACING_MM, DEFAULT_SUBPEAKS, round_cluster_table
+from ..clusters import round_cluster_table
 from ..errors import GlmstepsWarning, GroupError
 from ..fileio import write_tsv
-from ..groupdata import group_summary, load_group_data, map_block
+from ..groupdata import group_settings, group_summary, load_group_data, map_block
 from ..maps import map_description, save_map, statistic_intent
 from ..provenance import build_record, collect_warnings, write_sidecar
 
 LOGGER = logging.getLogger("glmsteps")
 STEP = "group_permutation"
-#: Defaults of the permutation settings: config/schema.yaml's group_models.<m>.permutation defaults.
-PERMUTATION_DEFAULTS: dict[str, Any] = {"n_permutations": 1000, "seed": 0, "cluster_forming_p": 0.001,
-                                        "tfce": False, "tfce_step": 0.1, "connectivity": 26,
-                                        "subpeaks": DEFAULT_SUBPEAKS, "subpeak_spacing_mm": DEFAULT_SUBPEAK_SPACING_MM}
-#: Bounds of n_permutations (config/schema.yaml's).
-N_PERMUTATIONS_RANGE = (10, 100000)
-
-
-def permutation_settings(params: Mapping[str, Any]) -> dict[str, Any]:
-    """Validated ``permutation`` settings with defaults (GroupError on a bad value)."""
-    given = params.get("permutation")
-    if not isinstance(given, Mapping):
-        raise GroupError(f"group_permutation params: permutation is {given!r}; give a mapping with "
-                         f"{sorted(PERMUTATION_DEFAULTS)}")
-    unknown = sorted(set(given) - set(PERMUTATION_DEFAULTS))
-    if unknown:
-        raise GroupError(f"group_permutation params: unknown permutation key(s) {unknown}; "
-                         f"use {sorted(PERMUTATION_DEFAULTS)}")
-    settings = {**PERMUTATION_DEFAULTS, **given}
-    low, high = N_PERMUTATIONS_RANGE
-    n = settings["n_permutations"]
-    if isinstance(n, bool) or not isinstance(n, int) or not low <= n <= high:
-        raise GroupError(f"group_permutation params: n_permutations is {n!r}; use an integer from {low} to {high} "
-                         "(e.g. 5000)")
-    seed = settings["seed"]
-    if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
-        raise GroupError(f"group_permutation params: seed is {seed!r}; use a non-negative integer")
-    p = settings["cluster_forming_p"]
-    if isinstance(p, bool) or not isinstance(p, (int, float)) or not 0 < p < 1:
-        raise GroupError(f"group_permutation params: cluster_forming_p is {p!r}; use a number in (0, 1) "
-                         "(e.g. 0.001)")
-    if not isinstance(settings["tfce"], bool):
-        raise GroupError(f"group_permutation params: tfce is {settings['tfce']!r}; use true or false")
-    step = settings["tfce_step"]
-    if isinstance(step, bool) or not isinstance(step, (int, float)) or not step > 0:
-        raise GroupError(f"group_permutation params: tfce_step is {step!r}; use a positive number (t units)")
-    if isinstance(settings["connectivity"], bool) or settings["connectivity"] not in (6, 18, 26):
-        raise GroupError(f"group_permutation params: connectivity is {settings['connectivity']!r}; use 6, 18 or 26")
-    sub = settings["subpeaks"]
-    if isinstance(sub, bool) or not isinstance(sub, int) or not 0 <= sub <= 20:
-        raise GroupError(f"group_permutation params: subpeaks is {sub!r}; use an integer from 0 to 20")
-    spacing = settings["subpeak_spacing_mm"]
-    if isinstance(spacing, bool) or not isinstance(spacing, (int, float)) or not spacing > 0:
-        raise GroupError(f"group_permutation params: subpeak_spacing_mm is {spacing!r}; use a positive number (mm)")
-    return settings
 
 
 def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],
@@ -111,8 +67,12 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     if missing:
         raise GroupError(f"group_permutation rule: output(s) {missing} are not named; name every output")
     with collect_warnings() as seen:
-        settings = permutation_settings(params)
-        data = load_group_data(inputs, params, wildcards)
+        model = group_settings(params, wildcards)
+        if model.permutation is None:
+            raise GroupError("group_permutation params: permutation is null; the rule runs this step only for "
+                             "models whose permutation is set")
+        settings = model.permutation
+        data = load_group_data(inputs, model, wildcards)
         complete = np.all(np.isfinite(data.Y), axis=0)
         n_left_out = int(np.sum(~complete))
         if n_left_out:
@@ -120,23 +80,23 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
                           "(NaN in the FWE maps)", GlmstepsWarning, stacklevel=2)
         if not np.any(complete):
             raise GroupError("group_permutation: no mask voxel is present in every kept subject; nothing to test")
-        if data.settings["estimation"] != "ols":
-            warnings.warn(f"group_permutation: estimation {data.settings['estimation']} is not used; the "
+        if data.settings.estimation != "ols":
+            warnings.warn(f"group_permutation: estimation {data.settings.estimation} is not used; the "
                           "permutation statistic is the OLS t", GlmstepsWarning, stacklevel=2)
-        tail = data.settings["tail"]
-        method: pm.Method = "sign_flip" if data.settings["design"] in ("one_sample", "paired") else "permute"
+        tail = data.settings.tail
+        method: pm.Method = "sign_flip" if data.settings.design in ("one_sample", "paired") else "permute"
         dof = float(data.design.matrix.shape[0] - np.linalg.matrix_rank(data.design.matrix))
-        threshold = float(stats.t_critical(settings["cluster_forming_p"], dof, tail))
+        threshold = float(stats.t_critical(settings.cluster_forming_p, dof, tail))
         voxel_index = data.voxel_index[complete]
         LOGGER.info("group_permutation: %s, %s, %d permutations, %d voxels, %d subjects", method, tail,
-                    settings["n_permutations"], voxel_index.size, len(data.subjects))
+                    settings.n_permutations, voxel_index.size, len(data.subjects))
         result = pm.run_permutation_test(
             data.design.matrix, data.Y[:, complete], data.c, voxel_index, data.shape, method,
-            settings["n_permutations"], settings["seed"], threshold,
-            blocks=data.design.blocks, tfce=settings["tfce"], tfce_step=float(settings["tfce_step"]),
-            connectivity=settings["connectivity"], progress=pm.log_progress, tail=tail)
+            settings.n_permutations, settings.seed, threshold,
+            blocks=data.design.blocks, tfce=settings.tfce, tfce_step=settings.tfce_step,
+            connectivity=settings.connectivity, progress=pm.log_progress, tail=tail)
         table, numbers = pm.observed_cluster_table(result, voxel_index, data.shape, data.affine,
-                                                   int(settings["subpeaks"]), float(settings["subpeak_spacing_mm"]))
+                                                   settings.subpeaks, settings.subpeak_spacing_mm)
     record = build_record(STEP, params, {k: inputs[k] for k in ("effect", "variance", "participants")},
                           warnings_seen=seen)
     summary = group_summary(data, wildcards)
@@ -145,13 +105,13 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
         "method": method, "tail": tail,
         "inference": f"{tail}; FWE from the permutation maximum of {maximum_of} (Nichols & Holmes 2002); "
                      "Freedman-Lane for nuisance columns (Winkler et al. 2014)",
-        "statistic": "OLS t", "n_permutations": settings["n_permutations"], "seed": settings["seed"],
-        "cluster_forming_p": settings["cluster_forming_p"], "cluster_forming_t": threshold, "dof": dof,
-        "connectivity": settings["connectivity"],
+        "statistic": "OLS t", "n_permutations": settings.n_permutations, "seed": settings.seed,
+        "cluster_forming_p": settings.cluster_forming_p, "cluster_forming_t": threshold, "dof": dof,
+        "connectivity": settings.connectivity,
         "cluster_mass": "sum of the statistic's magnitude over the cluster's voxels",
-        "tfce": settings["tfce"], "tfce_step": float(settings["tfce_step"]),
+        "tfce": settings.tfce, "tfce_step": settings.tfce_step,
         "tfce_extent_power": pm.TFCE_EXTENT_POWER, "tfce_height_power": pm.TFCE_HEIGHT_POWER,
-        "subpeaks": settings["subpeaks"], "subpeak_spacing_mm": float(settings["subpeak_spacing_mm"]),
+        "subpeaks": settings.subpeaks, "subpeak_spacing_mm": settings.subpeak_spacing_mm,
         "voxels_tested": int(voxel_index.size), "voxels_not_tested": n_left_out, "n_clusters": int(len(table)),
     }
     # p_fwe_cluster: extent FWE p of each voxel's cluster, 1 at tested voxels outside clusters
@@ -159,7 +119,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     in_cluster = numbers > 0
     cluster_p[in_cluster] = table["p_fwe_extent"].to_numpy()[numbers[in_cluster] - 1]
     tfce_p = result.p_fwe_tfce if result.p_fwe_tfce is not None else np.full(voxel_index.size, np.nan)
-    tfce_note = None if settings["tfce"] else "tfce is false: this map is all NaN"
+    tfce_note = None if settings.tfce else "tfce is false: this map is all NaN"
 
     write_sidecar(outputs["clusters"], record, group=summary, permutation=perm_block,
                   map=map_block(data, wildcards, "clusters"))

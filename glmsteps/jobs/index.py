@@ -1,4 +1,5 @@
-"""Step `index`: list every statistical map of the study in ``index.tsv``."""
+"""Step `index`: list every statistical map of the study in ``index.tsv``; mark the output folder as a
+BIDS derivative dataset (``dataset_description.json``)."""
 
 from __future__ import annotations
 
@@ -9,8 +10,10 @@ from typing import Any
 
 import pandas as pd
 
+from .. import __version__
+from ..bids import derivative_description
 from ..errors import ProvenanceError
-from ..fileio import write_tsv
+from ..fileio import write_json, write_tsv
 from ..provenance import build_record, read_record, sidecar_path, write_sidecar
 
 #: Columns of index.tsv, in order.
@@ -52,7 +55,8 @@ def index_rows(map_paths: Sequence[str], relative_to: str | os.PathLike[str]) ->
 
 def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],
         wildcards: Mapping[str, str], threads: int = 1) -> None:
-    """Write ``index.tsv`` (inputs: ``maps``; output: ``index``)."""
+    """Write ``index.tsv`` (inputs: ``maps``; outputs: ``index`` and, when the rule names it,
+    ``description``: the output folder's ``dataset_description.json``)."""
     maps = list(inputs["maps"])
     out_dir = Path(outputs["index"]).parent
     table = index_rows(maps, out_dir)
@@ -61,3 +65,5 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
                           map_lineage_hashes=sorted(set(table["lineage_hash"])))
     write_sidecar(outputs["index"], record)
     write_tsv(outputs["index"], table)
+    if outputs.get("description"):
+        write_json(outputs["description"], derivative_description(__version__))

@@ -32,40 +32,13 @@ from typing import Any
 from .. import provenance
 from ..errors import ConfigError
 from ..fileio import write_text, write_tsv
-from ..report.collect import ReportSettings, ReportSources, collect_report, report_facts
+from ..report.collect import ReportSources, collect_report, report_facts
 from ..report.html import render_study_page, render_subject_page
 from ..report.tables import run_qc_frame
+from ..settings import ReportSettings
 
 STEP = "report"
 logger = logging.getLogger("glmsteps")
-
-
-def check_params(params: Mapping[str, Any]) -> ReportSettings:
-    """The report's settings; missing keys take their defaults.
-
-    Raises
-    ------
-    ConfigError
-    """
-    p = dict(params)
-    try:
-        settings = ReportSettings(site_column=str(p.get("site_column", "site")),
-                                  outlier_mads=float(p.get("outlier_mads", 3.0)),
-                                  min_site_runs=int(p.get("min_site_runs", 5)),
-                                  min_relative_spread=float(p.get("min_relative_spread", 0.05)),
-                                  mosaic_slices=int(p.get("mosaic_slices", 12)),
-                                  mosaic_columns=int(p.get("mosaic_columns", 6)))
-    except (TypeError, ValueError) as exc:
-        raise ConfigError(f"config report: a setting is not a number ({exc}); see config/schema.yaml") from exc
-    if not 0 <= settings.min_relative_spread <= 1:
-        raise ConfigError("config report.min_relative_spread: expected a fraction from 0 to 1, found "
-                          f"{settings.min_relative_spread}")
-    if not settings.outlier_mads > 0:
-        raise ConfigError(f"config report.outlier_mads: expected a positive number, found {settings.outlier_mads}")
-    if settings.min_site_runs < 1 or settings.mosaic_slices < 1 or settings.mosaic_columns < 1:
-        raise ConfigError("config report: min_site_runs, mosaic_slices and mosaic_columns must be at least 1, found "
-                          f"{settings.min_site_runs}, {settings.mosaic_slices}, {settings.mosaic_columns}")
-    return settings
 
 
 def _list(inputs: Mapping[str, Any], key: str) -> tuple[str, ...]:
@@ -93,7 +66,7 @@ def sources_from(inputs: Mapping[str, Any]) -> ReportSources:
 def run(inputs: Mapping[str, Any], outputs: Mapping[str, Any], params: Mapping[str, Any],
         wildcards: Mapping[str, str], threads: int = 1) -> None:
     """Write the report pages (see the module docstring)."""
-    settings = check_params(params)
+    settings = ReportSettings.from_params(params)
     for key in ("study", "qc_table"):
         if key not in outputs:
             raise ConfigError(f"rule report: output {key!r} is missing; name the outputs study, subject_pages, qc_table")

@@ -4,7 +4,7 @@ inputs
     ``z``, ``p`` (maps of one contrast test), ``underlay`` (e.g. the run's
     mean image; same grid).
 params
-    The threshold setting (see :mod:`glmsteps.threshold`), including ``name``.
+    The threshold setting (:class:`glmsteps.settings.ThresholdSettings`), including ``name``.
 wildcards
     ``threshold`` (and those of the maps).
 outputs
@@ -42,7 +42,8 @@ from ..maps import OUTSIDE_VALUE, map_description, statistic_intent
 from ..maps import load_map
 from ..plots.slices import plot_orthogonal_slices
 from ..plots.style import save_figure
-from ..threshold import p_for_tail, parse_setting, threshold_map
+from ..settings import ThresholdSettings
+from ..threshold import p_for_tail, threshold_map
 
 STEP = "threshold"
 OUTPUT_KEYS = ("thresholded", "mask", "clusters", "figure")
@@ -80,7 +81,7 @@ def _test_of(p_path: str) -> tuple[str | None, str | None]:
 def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[str, Any],
         wildcards: Mapping[str, str], threads: int = 1) -> None:
     """Threshold one z map (see the module docstring)."""
-    setting = parse_setting(params, name=str(params.get("name", wildcards.get("threshold", "threshold"))))
+    setting = ThresholdSettings.from_params(params).threshold_setting(str(wildcards.get("threshold", "threshold")))
     missing = sorted(set(OUTPUT_KEYS) - set(outputs))
     if missing:
         raise ConfigError(f"{STEP}: outputs lack {missing}; declare thresholded, mask, clusters, figure")

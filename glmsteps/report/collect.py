@@ -34,6 +34,7 @@ import numpy as np
 
 from .. import __version__, audit
 from ..provenance import sidecar_path
+from ..settings import ReportSettings
 from . import qc, tables
 from .cache import FileCache, cache_key
 from .model import (ContrastInfo, Figure, FileLink, MapSection, ModelSection, Report, RunQc, RunSection,
@@ -56,18 +57,6 @@ QC_DIRECTIONS: dict[str, str] = {"censored_fraction": "high", "motion_mean": "hi
 #: Display cut of a z map drawn without a threshold setting (not a test).
 DISPLAY_Z = 3.09
 _ENTITY = {key: re.compile(rf"(?:^|[_/]){key}-([A-Za-z0-9]+)") for key in ("sub", "ses", "task", "run")}
-
-
-@dataclass(frozen=True)
-class ReportSettings:
-    """The report step's settings (``config/schema.yaml``, section ``report``)."""
-
-    site_column: str = "site"
-    outlier_mads: float = 3.0
-    min_site_runs: int = 5
-    min_relative_spread: float = 0.05
-    mosaic_slices: int = 12
-    mosaic_columns: int = 6
 
 
 @dataclass(frozen=True)
@@ -287,9 +276,10 @@ def read_sites(participants: str, column: str) -> tuple[dict[str, str], str]:
     """Subject label -> site from the participants table, and a note when there is none."""
     if not participants or not os.path.isfile(participants):
         return {}, "no participants table: all runs count as one site"
-    from ..fileio import read_tsv
+    from ..errors import GroupError
+    from ..fileio import read_user_tsv
 
-    table = read_tsv(participants)
+    table = read_user_tsv(participants, GroupError, "save it as a BIDS participants table")
     if "participant_id" not in table.columns or column not in table.columns:
         return {}, (f"{participants}: no column {column!r} (config report.site_column): all runs count as one site")
     sites = {}
@@ -1026,7 +1016,7 @@ def _contrast_infos(rows: Sequence[IndexRow], definitions: Mapping[str, Mapping[
 
 
 _STEP_ORDER = ("validate_events", "select_confounds", "build_design", "fit", "contrast", "combine_runs", "threshold",
-               "group", "group_permutation")
+               "group_model", "group_permutation")
 
 
 def _settings_rows(records: Records, runs: Sequence[RunFiles], rows: Sequence[IndexRow],

@@ -1,9 +1,13 @@
 """The end-of-run summary printed in the terminal (called by the Snakefile's ``onsuccess``/``onerror``).
 
 A few lines: maps in the index and how many this run wrote, runs excluded
-(with the reason), warnings per step, where ``index.tsv`` and the report are.
-It reads ``index.tsv`` and the report's sidecar (which counts warnings and
-exclusions when the report job ran); it never fails the run it summarises.
+(with the reason), warnings per step, where ``index.tsv`` and the report are,
+and, when the run stopped, the jobs that failed with their one-line error and
+log file (Snakemake's own error lines are hidden by the quiet default profile,
+and on a cluster a job's error lives only in its log). It reads ``index.tsv``,
+the report's sidecar (which counts warnings and exclusions when the report job
+ran) and the job logs written since the run started; it never fails the run it
+summarises.
 """
 
 from __future__ import annotations
@@ -41,6 +45,8 @@ class RunSummary:
         Paths (``""`` when missing).
     report_current : bool
         The report is at least as new as the index.
+    failed_jobs : tuple of (str, str)
+        (log file, its first error line) of each job that failed in this run.
     """
 
     n_maps: int | None
@@ -51,6 +57,7 @@ class RunSummary:
     index: str = ""
     report: str = ""
     report_current: bool = False
+    failed_jobs: tuple[tuple[str, str], ...] = ()
 
 
 def format_run_summary(summary: RunSummary, ok: bool) -> str:
@@ -65,7 +72,14 @@ def format_run_summary(summary: RunSummary, ok: bool) -> str:
       warnings: none
       report: not built (run `snakemake` without a target to build it)
     """
-    lines = ["glmsteps: finished." if ok else "glmsteps: stopped by an error (see the error above and its log file)."]
+    lines = ["glmsteps: finished." if ok else "glmsteps: stopped by an error."]
+    failed = summary.failed_jobs
+    for log, error in failed[:MAX_LISTED]:
+        lines.append(f"  failed: {log}: {error}")
+    if len(failed) > MAX_LISTED:
+        lines.append(f"  failed: and {len(failed) - MAX_LISTED} more jobs (their logs are under the results' logs folder)")
+    if not ok and not failed:
+        lines.append("  failed: see Snakemake's error above (no job log of this run records an error)")
     if summary.n_maps is None:
         lines.append("  maps: no index.tsv yet")
     else:
@@ -126,6 +140,43 @@ def _index_counts(index: Path, started: float) -> tuple[int, int, dict[str, int]
     return n, written, dict(by_status), runs, dict(warnings)
 
 
+#: How a job log marks its error (``glmsteps.jobs.common``'s log format: time, level, message).
+ERROR_MARK = " ERROR "
+
+
+def find_failed_jobs(log_dir: str | os.PathLike[str], started: float) -> list[tuple[str, str]]:
+    """Job logs written since ``started`` that record an error, with their first error line.
+
+    Parameters
+    ----------
+    log_dir : path-like
+        The workflow's log folder (``<output_dir>/logs``).
+    started : float
+        Start of the run (seconds since the epoch).
+
+    Returns
+    -------
+    list of (str, str)
+        (log path, the message of its first ``ERROR`` line), sorted by path.
+    """
+    found = []
+    root = Path(log_dir)
+    if not root.is_dir():
+        return found
+    for log in sorted(root.rglob("*.log")):
+        try:
+            if log.stat().st_mtime < started:
+                continue
+            with open(log, encoding="utf-8", errors="replace") as handle:
+                for line in handle:
+                    if ERROR_MARK in line:
+                        found.append((os.fspath(log), line.split(ERROR_MARK, 1)[1].strip()))
+                        break
+        except OSError:
+            continue
+    return found
+
+
 def _read(map_path: Path) -> dict[str, Any]:
     from ..provenance import sidecar_path
 
@@ -150,8 +201,9 @@ def collect_run_summary(output_dir: str | os.PathLike[str], started: float) -> R
     out = Path(output_dir)
     index = out / "index.tsv"
     report = out / "report" / "index.html"
+    failed = tuple(find_failed_jobs(out / "logs", started))
     if not index.is_file():
-        return RunSummary(None, 0, report=os.fspath(report) if report.is_file() else "")
+        return RunSummary(None, 0, report=os.fspath(report) if report.is_file() else "", failed_jobs=failed)
     n, written, by_status, excluded, warnings = _index_counts(index, started)
     current = report.is_file() and report.stat().st_mtime >= index.stat().st_mtime
     facts: Mapping[str, Any] = _read(report) if current else {}
@@ -160,7 +212,7 @@ def collect_run_summary(output_dir: str | os.PathLike[str], started: float) -> R
     if isinstance(facts.get("warnings_by_step"), Mapping):
         warnings = {str(k): int(v) for k, v in facts["warnings_by_step"].items()}
     return RunSummary(n, written, by_status, tuple(excluded), warnings, os.fspath(index),
-                      os.fspath(report) if report.is_file() else "", bool(current))
+                      os.fspath(report) if report.is_file() else "", bool(current), failed)
 
 
 def print_run_summary(output_dir: str | os.PathLike[str], started: float, ok: bool = True,

@@ -6,7 +6,7 @@
 Simulated nulls (``tests/calibration_helpers.py``): 300 volumes, double-gamma block (A 16 s, rest,
 B 16 s, rest) and event (2-6 s apart) designs, 128 s cosine drift, spatially independent noise on a
 grid of 3 mm voxels, fitted exactly as the fit step fits a run (``glmsteps.fitting.fit_voxels``)
-with its defaults (``arp``: AR(8), 5 mm smoothing, bins of 0.01) and with ``ar1``.
+with its defaults (``arp``: AR(8), smoothing twice the voxel size (6 mm here), bins of 0.01) and with ``ar1``.
 
 Sections
     null      false-positive rates of contrasts A and A - B at p < 0.05 and p < 0.001 (two-sided),
@@ -19,7 +19,7 @@ Sections
     power     sensitivity at a fixed true false-positive rate (0.001 and 0.05; thresholds from the
               model's own null voxels of the same grid) with a planted effect on half the voxels.
     edge      a patch of AR(1) 0.5 noise in AR(1) 0.1 noise: rates at p < 0.001 in the patch, in
-              its 2-voxel border and outside, with 5 mm smoothing without and with the tissue map.
+              its 2-voxel border and outside, with the default smoothing (6 mm) without and with the tissue map.
 """
 
 from __future__ import annotations
@@ -164,7 +164,7 @@ def section_power(grid: tuple[int, int, int]) -> None:
 
 
 def section_edge(grid: tuple[int, int, int]) -> None:
-    print("\n## A patch of AR(1) 0.5 noise in AR(1) 0.1 noise (TR 2 s block, 5 mm smoothing)\n")
+    print("\n## A patch of AR(1) 0.5 noise in AR(1) 0.1 noise (TR 2 s block, default 6 mm smoothing)\n")
     print("| tissue map | model | patch: p<0.001 | border (2 voxels): p<0.001 | outside: p<0.001 | patch: p<0.05 "
           "| lag-1 of the models: patch border (inside) / outside border |")
     print("|---|---|---|---|---|---|---|")

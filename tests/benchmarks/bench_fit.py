@@ -9,7 +9,7 @@ fresh subprocess so that peak memory (``ru_maxrss``) belongs to one task:
 
 * nibabel ``get_fdata()`` of the .nii.gz (the yardstick);
 * the whole fit job (stream + mask, OLS, noise model estimate, binned refit,
-  HDF5 and QC maps written) with the step's defaults (``glmsteps.jobs.fit.DEFAULTS``:
+  HDF5 and QC maps written) with the step's defaults (``glmsteps.settings.FitSettings``:
   percent scaling, AR(8) with 5 mm smoothing of the estimates) and with each
   noise model given by ``--models`` (default: the default model, then ``ar1``);
 * a per-voxel statsmodels GLS loop on a sample of voxels, extrapolated to the
@@ -113,7 +113,7 @@ def write_run(folder: Path, shape: tuple[int, int, int], kind: str) -> dict[str,
     pd.DataFrame(X, columns=names).to_csv(folder / "design.tsv", sep="\t", index=False)
     (folder / "design.json").write_text(json.dumps({
         "names": names, "roles": roles, "conditions": ["a", "b"] + [""] * 11, "basis": ["main", "main"] + [""] * 11,
-        "first_volume": 0, "n_volumes": N_VOL, "excluded": False}))
+        "first_volume": 0, "n_volumes": N_VOL, "repetition_time_s": TR_S, "excluded": False}))
     return {"bold": str(path), "mask": str(folder / "mask.nii.gz"), "design": str(folder / "design.tsv"),
             "design_summary": str(folder / "design.json")}
 
@@ -150,7 +150,7 @@ def child_fit(inputs_json: str, out: str, model: str) -> dict:
     inputs = json.loads(inputs_json)
     outputs = {k: str(Path(out) / (k + (".h5" if k == "fit" else ".nii.gz")))
                for k in ("fit", "mean", "residual_sd", "ar_coef")}
-    params = {**job.DEFAULTS, "autocorrelation": model, "repetition_time_s": TR_S}
+    params = {"autocorrelation": model}  # the other settings at the schema's defaults
     t0 = time.perf_counter()
     job.run(inputs, outputs, params, {"subject": "01", "run_id": "task-a_run-1"}, threads=int(JOB_THREADS))
     seconds = time.perf_counter() - t0

@@ -355,11 +355,12 @@ else:
 others = [s for s in subjects if s != bad_subject]
 for s in others:
     combined = sorted((results / f"sub-{s}" / "combined").glob("contrast-*/z.nii.gz"))
-    # the toy config has four t contrasts, each combined over the two runs
-    if len(combined) != 4:
-        problems.append(f"sub-{s}: {len(combined)} combined z maps; expected 4 (one per t contrast)")
+    # the toy config has four t contrasts and one F contrast, each combined over the two runs
+    # (t: fixed effects; F: the fixed-effects Wald F)
+    if len(combined) != 5:
+        problems.append(f"sub-{s}: {len(combined)} combined z maps; expected 5 (one per contrast)")
     else:
-        say(f"sub-{s}: 4 combined z maps present")
+        say(f"sub-{s}: 5 combined z maps present")
 bad_combined = sorted((results / f"sub-{bad_subject}" / "combined").glob("contrast-*/z.nii.gz"))
 if bad_combined:
     problems.append(f"sub-{bad_subject} has combined maps although its run-1 BOLD is corrupt")
@@ -373,8 +374,13 @@ if "FAILED" not in final:
 if "COMPLETED" not in final:
     problems.append("no SLURM job COMPLETED in squeue/sacct")
 log_text = smk_log.read_text(encoding="utf-8", errors="replace")
-if not re.search(r"Error in (rule fit|group)", log_text):
-    problems.append(f"{smk_log} does not report the failed job ('Error in rule fit' or 'Error in group')")
+# the end-of-run summary names the failed job's log and its one-line error (Snakemake's own
+# "Error in rule" lines are hidden by the quiet default profile)
+failed = [line for line in log_text.splitlines() if line.startswith("  failed: ") and "/fit.log: DataError: " in line]
+if not failed:
+    problems.append(f"{smk_log} does not name the failed fit job ('  failed: .../fit.log: DataError: ...')")
+else:
+    say(f"summary: {failed[0][:300]}")
 
 for p in problems:
     say(f"check failed: {p}")

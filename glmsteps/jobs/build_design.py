@@ -37,89 +37,15 @@ import pandas as pd
 
 from .. import provenance
 from ..bids import run_label
-from ..design import DRIFT_MODELS, build_design, design_diagnostics, frame_times
+from ..design import build_design, design_diagnostics, frame_times
 from ..errors import ConfigError, DesignError
 from ..fileio import read_json, read_tsv, write_json, write_tsv
-from ..hrf import HRF_MODELS
 from ..plots.design import plot_correlation_matrix, draw_design_matrix
+from ..settings import DesignSettings
 
 STEP = "build_design"
-PARAM_KEYS: tuple[str, ...] = ("hrf", "fir_bins", "fir_bin_width_s", "time_resolution_s", "drift_basis", "cutoff_s",
-                               "legendre_order", "volume_time_fraction", "conditions", "modulators")
 INPUT_KEYS: tuple[str, ...] = ("events", "events_summary", "confounds", "confounds_summary")
-#: Where each param comes from in the config (named in messages).
-CONFIG_KEYS: dict[str, str] = {
-    "hrf": "design.hrf", "fir_bins": "design.fir_bins", "fir_bin_width_s": "design.fir_bin_width_s",
-    "time_resolution_s": "design.time_resolution_s", "drift_basis": "design.drift.basis",
-    "cutoff_s": "design.drift.cutoff_s", "legendre_order": "design.drift.legendre_order",
-    "volume_time_fraction": "acquisition.volume_time_fraction", "conditions": "events.conditions",
-    "modulators": "events.modulators"}
 OUTPUT_KEYS: tuple[str, ...] = ("design", "summary", "figure", "correlation_figure")
-
-
-def _number(params: Mapping[str, Any], key: str, *, positive: bool = False) -> float:
-    value = params[key]
-    try:
-        out = float(value)
-    except (TypeError, ValueError):
-        raise ConfigError(f"{STEP} param {key}={value!r} is not a number; set {CONFIG_KEYS[key]} to a number") from None
-    if not np.isfinite(out) or (positive and out <= 0):
-        raise ConfigError(f"{STEP} param {key}={value!r} must be a {'positive ' if positive else ''}finite number; "
-                          f"set {CONFIG_KEYS[key]}")
-    return out
-
-
-def check_params(params: Mapping[str, Any]) -> dict[str, Any]:
-    """Validate the step's params up front; return them as plain typed values."""
-    missing = [k for k in PARAM_KEYS if k not in params]
-    if missing:
-        raise ConfigError(f"{STEP}: params {missing} are missing; the rule must pass {list(PARAM_KEYS)}")
-    hrf = params["hrf"]
-    if hrf not in HRF_MODELS:
-        raise ConfigError(f"{STEP}: hrf={hrf!r} is not known; set design.hrf to one of {', '.join(HRF_MODELS)}")
-    drift = params["drift_basis"]
-    if drift not in DRIFT_MODELS:
-        raise ConfigError(f"{STEP}: drift_basis={drift!r} is not known; set design.drift.basis to one of "
-                          f"{', '.join(DRIFT_MODELS)}")
-    dt = _number(params, "time_resolution_s", positive=True)
-    if dt > 0.1:
-        raise ConfigError(f"{STEP}: time_resolution_s={dt} s is coarser than 0.1 s; set design.time_resolution_s "
-                          "to 0.1 or finer")
-    out: dict[str, Any] = {"hrf": hrf, "drift_basis": drift, "dt_s": dt,
-                           "volume_time_fraction": _number(params, "volume_time_fraction")}
-    if not 0.0 <= out["volume_time_fraction"] <= 1.0:
-        raise ConfigError(f"{STEP}: volume_time_fraction={params['volume_time_fraction']!r} must be between 0 and 1; "
-                          "set acquisition.volume_time_fraction")
-    out["cutoff_s"] = _number(params, "cutoff_s", positive=True) if drift == "cosine" else 128.0
-    order = params["legendre_order"]
-    if drift == "legendre" and (isinstance(order, bool) or not isinstance(order, (int, np.integer)) or order < 1):
-        raise ConfigError(f"{STEP}: legendre_order={order!r} must be a whole number >= 1; "
-                          "set design.drift.legendre_order")
-    out["legendre_order"] = int(order) if drift == "legendre" else 1
-    if hrf == "fir":
-        bins = params["fir_bins"]
-        if isinstance(bins, bool) or not isinstance(bins, (int, np.integer)) or bins < 1:
-            raise ConfigError(f"{STEP}: fir_bins={bins!r} must be a whole number >= 1 for the fir model; "
-                              "set design.fir_bins")
-        out["fir_bins"] = int(bins)
-        out["fir_bin_width_s"] = _number(params, "fir_bin_width_s", positive=True)
-        if out["fir_bin_width_s"] < dt:
-            raise ConfigError(f"{STEP}: fir_bin_width_s={out['fir_bin_width_s']} s is shorter than "
-                              f"time_resolution_s={dt} s; widen the bins (design.fir_bin_width_s)")
-    else:
-        out["fir_bins"], out["fir_bin_width_s"] = 0, 0.0
-    conditions = params["conditions"] or []
-    if isinstance(conditions, str) or not all(isinstance(c, str) for c in conditions):
-        raise ConfigError(f"{STEP}: conditions={conditions!r} must be a list of condition names; "
-                          "set events.conditions")
-    out["conditions"] = list(conditions)
-    modulators = params["modulators"] or {}
-    if not isinstance(modulators, Mapping) or not all(
-            isinstance(v, (list, tuple)) and all(isinstance(m, str) for m in v) for v in modulators.values()):
-        raise ConfigError(f"{STEP}: modulators={modulators!r} must map each condition to a list of column names; "
-                          "set events.modulators")
-    out["modulators"] = {str(k): list(v) for k, v in modulators.items()}
-    return out
 
 
 def read_confounds_summary(path: str | os.PathLike[str]) -> tuple[int, int, bool]:
@@ -208,7 +134,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
         missing = [k for k in keys if k not in given]
         if missing:
             raise ConfigError(f"{STEP}: named {group}(s) {missing} are missing; the rule must name {list(keys)}")
-    settings = check_params(params)
+    settings = DesignSettings.from_params(params)
     n_total, drop, excluded = read_confounds_summary(inputs["confounds_summary"])
     tr_s, n_bold, acquisition = read_events_summary(inputs["events_summary"])
     if n_bold != n_total:
@@ -218,15 +144,11 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     events = read_events(inputs["events"])
     confounds = read_confounds(inputs["confounds"], n_total).iloc[drop:].reset_index(drop=True)
     n_kept = n_total - drop
-    times = frame_times(n_kept, tr_s, settings["volume_time_fraction"], first_volume=drop)
+    times = frame_times(n_kept, tr_s, settings.volume_time_fraction, first_volume=drop)
 
     with provenance.collect_warnings() as seen:
         try:
-            design = build_design(events, times, hrf=settings["hrf"], dt_s=settings["dt_s"],
-                                  fir_bins=settings["fir_bins"], fir_bin_width_s=settings["fir_bin_width_s"],
-                                  drift_basis=settings["drift_basis"], cutoff_s=settings["cutoff_s"],
-                                  legendre_order=settings["legendre_order"], confounds=confounds,
-                                  conditions=settings["conditions"], modulators=settings["modulators"])
+            design = build_design(events, times, confounds=confounds, **settings.design_options())
             diagnostics = design_diagnostics(design, allow_rank_deficient=excluded)
         except DesignError as exc:
             raise DesignError(f"{inputs['events']} with {inputs['confounds']}: {exc}") from None

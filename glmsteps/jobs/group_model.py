@@ -10,7 +10,7 @@ Params
     ``design``, ``group_column``, ``pair_column``, ``covariates``,
     ``site_column``, ``site_as_covariate``, ``estimation``, ``harmonise_sites``,
     ``mask_fraction``, ``tail``, ``contrast`` (``{"name": str, "weights":
-    {column: weight}}``).
+    {column: weight}}``): :class:`glmsteps.settings.GroupModelSettings`.
 Wildcards
     ``model``, ``contrast`` (first level), ``group_contrast``.
 Outputs
@@ -39,7 +39,7 @@ from ..maps import map_description, save_map, statistic_intent
 from ..plots.sites import plot_site_effects
 from ..provenance import build_record, collect_warnings, write_sidecar
 
-STEP = "group"
+STEP = "group_model"
 OUTPUT_KEYS = ("effect", "variance", "t", "z", "p", "site_qc", "site_figure")
 
 
@@ -61,7 +61,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     with collect_warnings() as seen:
         data = load_group_data(inputs, params, wildcards)
         fit = fit_group_chunks(data)
-        p, z = group_pz(fit, data.settings["tail"])
+        p, z = group_pz(fit, data.settings.tail)
     record = build_record(STEP, params, {k: inputs[k] for k in ("effect", "variance", "participants")},
                           warnings_seen=seen)
     summary = {**group_summary(data, wildcards), **fit_summary(data, fit)}
@@ -79,7 +79,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     values = {"effect": fit.effect, "variance": fit.variance, "t": fit.t, "z": z, "p": p}
     for stat in ("effect", "variance", "t", "z", "p"):
         write_sidecar(outputs[stat], record, map=map_block(data, wildcards, stat), group=summary, kind="t",
-                      tail=data.settings["tail"])
+                      tail=data.settings.tail)
         save_map(outputs[stat], values[stat], data.voxel_index, data.shape, data.affine,
                  intent=statistic_intent(stat, summary.get("dof_min")),
                  description=map_description(stat, map_block(data, wildcards, stat)["contrast"], "group"))

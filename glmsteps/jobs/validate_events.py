@@ -22,28 +22,14 @@ from typing import Any
 
 import pandas as pd
 
-from ..errors import ConfigError, EventsError
+from ..errors import EventsError
 from ..events import validate_events
 from ..fileio import read_user_tsv, write_json, write_tsv
 from ..provenance import build_record, collect_warnings, display_path, sidecar_path, write_sidecar
+from ..settings import EventsSettings
 from ..volumes import bids_sidecar_of, read_bold_header, read_run_timing
 
 STEP = "validate_events"
-#: The params this step needs, exactly.
-PARAM_KEYS: tuple[str, ...] = ("condition_column", "duplicate_events", "missing_duration", "modulators",
-                               "repetition_time_s")
-
-
-def _check_params(params: Mapping[str, Any]) -> None:
-    missing = [k for k in PARAM_KEYS if k not in params]
-    if missing:
-        raise ConfigError(f"step {STEP}: params lack {missing}; the rule must pass exactly {list(PARAM_KEYS)}")
-    unknown = sorted(set(params) - set(PARAM_KEYS))
-    if unknown:
-        raise ConfigError(f"step {STEP}: unknown params {unknown}; the rule must pass exactly {list(PARAM_KEYS)}")
-    if not isinstance(params["modulators"], Mapping):
-        raise ConfigError(f"config events.modulators is {params['modulators']!r}; expected a mapping of condition "
-                          "to a list of events columns ({} for none)")
 
 
 def _read_events(path: str) -> pd.DataFrame:
@@ -73,7 +59,7 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     outputs : mapping
         ``events`` (clean TSV) and ``summary`` (JSON).
     params : mapping
-        See the module docstring.
+        See the module docstring (:class:`glmsteps.settings.EventsSettings`).
     wildcards : mapping
         Unused (the run's entities).
     threads : int
@@ -84,19 +70,19 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     EventsError, DataError, ConfigError
         Before anything is written.
     """
-    _check_params(params)
+    settings = EventsSettings.from_params(params)
     events_path, bold_path = str(inputs["events"]), str(inputs["bold"])
     side = bold_sidecar(inputs, bold_path)
     bold = read_bold_header(bold_path)
     table = _read_events(events_path)
     with collect_warnings() as seen:
-        timing = read_run_timing(bold, side, params["repetition_time_s"])
+        timing = read_run_timing(bold, side, settings.repetition_time_s)
         clean, summary = validate_events(table, source=events_path, n_volumes=bold.shape[3],
                                          repetition_time_s=timing.repetition_time_s,
-                                         condition_column=params["condition_column"],
-                                         modulators=params["modulators"],
-                                         duplicate_events=params["duplicate_events"],
-                                         missing_duration=params["missing_duration"])
+                                         condition_column=settings.condition_column,
+                                         modulators=settings.modulators,
+                                         duplicate_events=settings.duplicate_events,
+                                         missing_duration=settings.missing_duration)
     read = {"events": events_path, "bold": bold_path, **({"bold_sidecar": side} if side else {})}
     record = build_record(STEP, params, read, seen)
     summary_path = Path(outputs["summary"])

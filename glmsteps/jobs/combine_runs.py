@@ -43,7 +43,8 @@ from ..contrasts import MAP_KEYS, contrast_matrix, parse_spec
 from ..errors import ConfigError
 from ..fileio import save_nifti
 from ..maps import map_description, statistic_intent, unmask
-from .contrast import contrast_of_fit, contrast_settings, map_block
+from ..settings import ContrastSettings
+from .contrast import contrast_of_fit, map_block
 
 STEP = "combine_runs"
 
@@ -65,8 +66,9 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     """Combine a subject's runs (see the module docstring)."""
     from glmsteps.fitstore import read_fit
 
-    name, definition, tail, skip = contrast_settings(params)
-    spec = parse_spec(name, definition, tail)
+    settings = ContrastSettings.from_params(params)
+    name, skip = settings.name, settings.skip_nonestimable
+    spec = parse_spec(name, settings.definition, settings.tail)
     keys = MAP_KEYS[spec.kind]
     missing = sorted(set(keys) - set(outputs))
     if missing:
