@@ -163,7 +163,9 @@ def command_template(step: str, python: str | None = None, warm: bool = True) ->
     step : str
         Key of :data:`STEP_MODULES`.
     python : str, optional
-        Interpreter (default: the running one, i.e. Snakemake's).
+        The interpreter as a shell word, used as given (e.g. ``"$GLMSTEPS_PYTHON"``, which
+        the workflow sets to its own interpreter, so that a job's recorded code does not
+        name the environment's path); default: the running interpreter's path, quoted.
     warm : bool
         Through the warm server (default), or in the client's own process (``--direct``:
         a heavy step whose resources Snakemake's benchmark and a cluster should see).
@@ -181,7 +183,7 @@ def command_template(step: str, python: str | None = None, warm: bool = True) ->
     names = " ".join(f"{{{kind}._names:q}}" for kind in ("input", "output", "params"))
     values = f" {SEPARATOR} ".join(("{input:q}", "{output:q}", "{params:q}", "{wildcards}", "{log:q}"))
     direct = "" if warm else "--direct "
-    return (f"{shlex.quote(python or sys.executable)} -m glmsteps.launch {direct}{step} {{threads}} {names} "
+    return (f"{python or shlex.quote(sys.executable)} -m glmsteps.launch {direct}{step} {{threads}} {names} "
             f"{SEPARATOR} {values}")
 
 

@@ -21,6 +21,11 @@ from glmsteps.volumes import bids_sidecar_of
 
 #: When this run started (the end-of-run summary counts the maps written since).
 RUN_STARTED = time.time()
+#: The interpreter of this run, for the jobs' shell commands: they name it as "$GLMSTEPS_PYTHON", so
+#: the recorded code of a job does not depend on where the environment lives (results planned from
+#: another venv, or from an installed wheel, are not rerun for that). Every Snakemake process that
+#: runs jobs (also on a cluster node) parses this file and sets it.
+os.environ["GLMSTEPS_PYTHON"] = sys.executable
 
 
 def _config_error(message):
@@ -119,12 +124,12 @@ F_CONTRAST = _alternation(F_CONTRASTS)
 
 
 # ---------------------------------------------------------------- paths
-RUN_DIR = OUT + "/sub-{subject}/{run_id}"
-SUBJECT_DIR = OUT + "/sub-{subject}/combined"
-GROUP_DIR = OUT + "/group/model-{model}/contrast-{contrast}/{group_contrast}"
-LOG_DIR = OUT + "/logs"
+RUN_DIR = f"{OUT}/sub-{{subject}}/{{run_id}}"
+SUBJECT_DIR = f"{OUT}/sub-{{subject}}/combined"
+GROUP_DIR = f"{OUT}/group/model-{{model}}/contrast-{{contrast}}/{{group_contrast}}"
+LOG_DIR = f"{OUT}/logs"
 #: Snakemake's benchmark files (wall time, memory, CPU) of the heavy steps.
-BENCHMARK_DIR = OUT + "/benchmarks"
+BENCHMARK_DIR = f"{OUT}/benchmarks"
 REPORT_DIR = PLAN.report_dir()
 
 
@@ -224,13 +229,13 @@ def step_command(step):
     ``script:``: their own process, measured by Snakemake's benchmark and a cluster's memory
     accounting.
     """
-    return command_template(step)
+    return command_template(step, python='"$GLMSTEPS_PYTHON"')
 
 
 def heavy_step_command(step):
     """Shell command of a heavy step (the fit): its own fresh process, so that Snakemake's
     ``benchmark:`` and a cluster's accounting measure it, without Snakemake's script preamble."""
-    return command_template(step, warm=False)
+    return command_template(step, warm=False, python='"$GLMSTEPS_PYTHON"')
 
 
 # ---------------------------------------------------------------- params (glmsteps/workflow_plan.py)
