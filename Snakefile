@@ -14,6 +14,13 @@ if not workflow.configfiles:
 
 
 include: "rules/common.smk"
+
+
+# the interpreter the jobs' shell commands name ("$GLMSTEPS_PYTHON"; set in rules/common.smk)
+envvars:
+    "GLMSTEPS_PYTHON",
+
+
 include: "rules/events.smk"
 include: "rules/confounds.smk"
 include: "rules/design.smk"
@@ -28,6 +35,7 @@ include: "rules/report.smk"
 
 onstart:
     start_launcher()
+    lift_local_rate_limit()
 
 
 onsuccess:

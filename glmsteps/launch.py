@@ -69,6 +69,9 @@ STEP_MODULES: dict[str, str] = {
 #: Modules the server imports before it serves (what the light steps need).
 WARM_MODULES: tuple[str, ...] = ("numpy", "scipy.special", "scipy.stats", "scipy.ndimage", "pandas", "nibabel",
                                  "h5py", "matplotlib", "matplotlib.figure", "matplotlib.backends.backend_agg")
+#: Environment variable in which the client hands its own start time (seconds since the epoch) to
+#: the forked job, whose process started later (read by glmsteps.jobs.common.process_start_time).
+PROCESS_START_VARIABLE = "GLMSTEPS_PROCESS_START"
 _LENGTH = struct.Struct("!I")
 
 
@@ -160,7 +163,9 @@ def command_template(step: str, python: str | None = None, warm: bool = True) ->
     step : str
         Key of :data:`STEP_MODULES`.
     python : str, optional
-        Interpreter (default: the running one, i.e. Snakemake's).
+        The interpreter as a shell word, used as given (e.g. ``"$GLMSTEPS_PYTHON"``, which
+        the workflow sets to its own interpreter, so that a job's recorded code does not
+        name the environment's path); default: the running interpreter's path, quoted.
     warm : bool
         Through the warm server (default), or in the client's own process (``--direct``:
         a heavy step whose resources Snakemake's benchmark and a cluster should see).
@@ -178,7 +183,7 @@ def command_template(step: str, python: str | None = None, warm: bool = True) ->
     names = " ".join(f"{{{kind}._names:q}}" for kind in ("input", "output", "params"))
     values = f" {SEPARATOR} ".join(("{input:q}", "{output:q}", "{params:q}", "{wildcards}", "{log:q}"))
     direct = "" if warm else "--direct "
-    return (f"{shlex.quote(python or sys.executable)} -m glmsteps.launch {direct}{step} {{threads}} {names} "
+    return (f"{python or shlex.quote(sys.executable)} -m glmsteps.launch {direct}{step} {{threads}} {names} "
             f"{SEPARATOR} {values}")
 
 
@@ -309,6 +314,18 @@ def run_warm(request: JobRequest, path: Path) -> int | None:
         sock.close()
 
 
+def own_start_time() -> float:
+    """This process's start (seconds since the epoch), from ``/proc``; now where there is none."""
+    try:
+        with open("/proc/self/stat", encoding="ascii") as fh:
+            fields = fh.read().rsplit(")", 1)[1].split()
+        with open("/proc/uptime", encoding="ascii") as fh:
+            uptime_s = float(fh.read().split()[0])
+        return time.time() - uptime_s + int(fields[19]) / os.sysconf("SC_CLK_TCK")
+    except (OSError, ValueError, IndexError):
+        return time.time()
+
+
 def main(argv: list[str] | None = None) -> int:
     """Client entry point: run one job (warm when possible); return its exit code."""
     args = list(sys.argv[1:] if argv is None else argv)
@@ -319,7 +336,10 @@ def main(argv: list[str] | None = None) -> int:
     request = parse_request(args[1:] if direct else args)
     if request.step not in STEP_MODULES:
         raise LaunchError(f"glmsteps.launch: unknown step {request.step!r}; known: {sorted(STEP_MODULES)}")
-    request = JobRequest(**{**asdict(request), "cwd": os.getcwd(), "env": dict(os.environ)})
+    env = dict(os.environ)
+    # the job's start-up overhead counts from this process's start (glmsteps.jobs.common.run_script)
+    env[PROCESS_START_VARIABLE] = f"{own_start_time():.6f}"
+    request = JobRequest(**{**asdict(request), "cwd": os.getcwd(), "env": env})
     if not direct and warm_enabled():
         path = socket_path()
         code = run_warm(request, path)

@@ -5,11 +5,11 @@ rule combine_runs:
     input:
         fit=subject_fits,
     output:
-        effect=SUBJECT_DIR + "/contrast-{contrast}/effect.nii.gz",
-        variance=SUBJECT_DIR + "/contrast-{contrast}/variance.nii.gz",
-        t=SUBJECT_DIR + "/contrast-{contrast}/t.nii.gz",
-        z=SUBJECT_DIR + "/contrast-{contrast}/z.nii.gz",
-        p=SUBJECT_DIR + "/contrast-{contrast}/p.nii.gz",
+        effect=f"{SUBJECT_DIR}/contrast-{{contrast}}/effect.nii.gz",
+        variance=f"{SUBJECT_DIR}/contrast-{{contrast}}/variance.nii.gz",
+        t=f"{SUBJECT_DIR}/contrast-{{contrast}}/t.nii.gz",
+        z=f"{SUBJECT_DIR}/contrast-{{contrast}}/z.nii.gz",
+        p=f"{SUBJECT_DIR}/contrast-{{contrast}}/p.nii.gz",
     params:
         settings=contrast_params,
     wildcard_constraints:
@@ -17,15 +17,15 @@ rule combine_runs:
     group:
         "subject_{subject}"
     log:
-        LOG_DIR + "/sub-{subject}/combined/contrast-{contrast}.log",
+        f"{LOG_DIR}/sub-{{subject}}/combined/contrast-{{contrast}}.log",
     shell:
         step_command("combine_runs")
 
 
 use rule combine_runs as combine_runs_f with:
     output:
-        f=SUBJECT_DIR + "/contrast-{contrast}/f.nii.gz",
-        z=SUBJECT_DIR + "/contrast-{contrast}/z.nii.gz",
-        p=SUBJECT_DIR + "/contrast-{contrast}/p.nii.gz",
+        f=f"{SUBJECT_DIR}/contrast-{{contrast}}/f.nii.gz",
+        z=f"{SUBJECT_DIR}/contrast-{{contrast}}/z.nii.gz",
+        p=f"{SUBJECT_DIR}/contrast-{{contrast}}/p.nii.gz",
     wildcard_constraints:
         contrast=F_CONTRAST,

@@ -1,12 +1,12 @@
 rule contrast_t:
     input:
-        fit=RUN_DIR + "/fit.h5",
+        fit=f"{RUN_DIR}/fit.h5",
     output:
-        effect=RUN_DIR + "/contrast-{contrast}/effect.nii.gz",
-        variance=RUN_DIR + "/contrast-{contrast}/variance.nii.gz",
-        t=RUN_DIR + "/contrast-{contrast}/t.nii.gz",
-        z=RUN_DIR + "/contrast-{contrast}/z.nii.gz",
-        p=RUN_DIR + "/contrast-{contrast}/p.nii.gz",
+        effect=f"{RUN_DIR}/contrast-{{contrast}}/effect.nii.gz",
+        variance=f"{RUN_DIR}/contrast-{{contrast}}/variance.nii.gz",
+        t=f"{RUN_DIR}/contrast-{{contrast}}/t.nii.gz",
+        z=f"{RUN_DIR}/contrast-{{contrast}}/z.nii.gz",
+        p=f"{RUN_DIR}/contrast-{{contrast}}/p.nii.gz",
     params:
         settings=contrast_params,
     wildcard_constraints:
@@ -14,18 +14,18 @@ rule contrast_t:
     group:
         "subject_{subject}"
     log:
-        LOG_DIR + "/sub-{subject}/{run_id}/contrast-{contrast}.log",
+        f"{LOG_DIR}/sub-{{subject}}/{{run_id}}/contrast-{{contrast}}.log",
     shell:
         step_command("contrast")
 
 
 rule contrast_f:
     input:
-        fit=RUN_DIR + "/fit.h5",
+        fit=f"{RUN_DIR}/fit.h5",
     output:
-        f=RUN_DIR + "/contrast-{contrast}/f.nii.gz",
-        z=RUN_DIR + "/contrast-{contrast}/z.nii.gz",
-        p=RUN_DIR + "/contrast-{contrast}/p.nii.gz",
+        f=f"{RUN_DIR}/contrast-{{contrast}}/f.nii.gz",
+        z=f"{RUN_DIR}/contrast-{{contrast}}/z.nii.gz",
+        p=f"{RUN_DIR}/contrast-{{contrast}}/p.nii.gz",
     params:
         settings=contrast_params,
     wildcard_constraints:
@@ -33,6 +33,6 @@ rule contrast_f:
     group:
         "subject_{subject}"
     log:
-        LOG_DIR + "/sub-{subject}/{run_id}/contrast-{contrast}.log",
+        f"{LOG_DIR}/sub-{{subject}}/{{run_id}}/contrast-{{contrast}}.log",
     shell:
         step_command("contrast")

@@ -4,11 +4,11 @@ rule validate_events:
         bold=bold_file,
         bold_sidecar=bold_sidecar_file,
     output:
-        events=RUN_DIR + "/events.tsv",
-        summary=RUN_DIR + "/events.json",
+        events=f"{RUN_DIR}/events.tsv",
+        summary=f"{RUN_DIR}/events.json",
     params:
         settings=events_params(),
     log:
-        LOG_DIR + "/sub-{subject}/{run_id}/validate_events.log",
+        f"{LOG_DIR}/sub-{{subject}}/{{run_id}}/validate_events.log",
     shell:
         step_command("validate_events")

@@ -3,13 +3,13 @@ rule fit:
         bold=bold_file,
         mask=mask_file,
         tissue=tissue_file,
-        design=RUN_DIR + "/design.tsv",
-        design_summary=RUN_DIR + "/design.json",
+        design=f"{RUN_DIR}/design.tsv",
+        design_summary=f"{RUN_DIR}/design.json",
     output:
-        fit=RUN_DIR + "/fit.h5",
-        mean=RUN_DIR + "/mean.nii.gz",
-        residual_sd=RUN_DIR + "/residual_sd.nii.gz",
-        ar_coef=RUN_DIR + "/ar_coef.nii.gz",
+        fit=f"{RUN_DIR}/fit.h5",
+        mean=f"{RUN_DIR}/mean.nii.gz",
+        residual_sd=f"{RUN_DIR}/residual_sd.nii.gz",
+        ar_coef=f"{RUN_DIR}/ar_coef.nii.gz",
     params:
         settings=fit_params(),
     # not in params: the fit does not depend on it (rules/common.smk: fit_params)
@@ -18,8 +18,8 @@ rule fit:
         mem_mb=fit_mem_mb,
         runtime=30,
     log:
-        LOG_DIR + "/sub-{subject}/{run_id}/fit.log",
+        f"{LOG_DIR}/sub-{{subject}}/{{run_id}}/fit.log",
     benchmark:
-        BENCHMARK_DIR + "/sub-{subject}/{run_id}/fit.tsv"
+        f"{BENCHMARK_DIR}/sub-{{subject}}/{{run_id}}/fit.tsv"
     shell:
         heavy_step_command("fit")

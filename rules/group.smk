@@ -6,13 +6,13 @@ rule group_model:
         variance=subject_variances,
         participants=participants_file(),
     output:
-        effect=GROUP_DIR + "/effect.nii.gz",
-        variance=GROUP_DIR + "/variance.nii.gz",
-        t=GROUP_DIR + "/t.nii.gz",
-        z=GROUP_DIR + "/z.nii.gz",
-        p=GROUP_DIR + "/p.nii.gz",
-        site_qc=GROUP_DIR + "/site_qc.json",
-        site_figure=GROUP_DIR + "/site_qc.png",
+        effect=f"{GROUP_DIR}/effect.nii.gz",
+        variance=f"{GROUP_DIR}/variance.nii.gz",
+        t=f"{GROUP_DIR}/t.nii.gz",
+        z=f"{GROUP_DIR}/z.nii.gz",
+        p=f"{GROUP_DIR}/p.nii.gz",
+        site_qc=f"{GROUP_DIR}/site_qc.json",
+        site_figure=f"{GROUP_DIR}/site_qc.png",
     params:
         settings=group_model_params,
     wildcard_constraints:
@@ -20,9 +20,9 @@ rule group_model:
     resources:
         mem_mb=4000,
     log:
-        LOG_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}.log",
+        f"{LOG_DIR}/group/model-{{model}}/contrast-{{contrast}}/{{group_contrast}}.log",
     benchmark:
-        BENCHMARK_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}.tsv"
+        f"{BENCHMARK_DIR}/group/model-{{model}}/contrast-{{contrast}}/{{group_contrast}}.tsv"
     script:
         "../scripts/group_model.py"
 
@@ -33,10 +33,10 @@ rule group_permutation:
         variance=subject_variances,
         participants=participants_file(),
     output:
-        p_fwe=GROUP_DIR + "/p_fwe.nii.gz",
-        p_fwe_cluster=GROUP_DIR + "/p_fwe_cluster.nii.gz",
-        clusters=GROUP_DIR + "/permutation_clusters.tsv",
-        p_fwe_tfce=GROUP_DIR + "/p_fwe_tfce.nii.gz",
+        p_fwe=f"{GROUP_DIR}/p_fwe.nii.gz",
+        p_fwe_cluster=f"{GROUP_DIR}/p_fwe_cluster.nii.gz",
+        clusters=f"{GROUP_DIR}/permutation_clusters.tsv",
+        p_fwe_tfce=f"{GROUP_DIR}/p_fwe_tfce.nii.gz",
     params:
         settings=group_permutation_params,
     wildcard_constraints:
@@ -46,8 +46,8 @@ rule group_permutation:
         mem_mb=4000,
         runtime=120,
     log:
-        LOG_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}_permutation.log",
+        f"{LOG_DIR}/group/model-{{model}}/contrast-{{contrast}}/{{group_contrast}}_permutation.log",
     benchmark:
-        BENCHMARK_DIR + "/group/model-{model}/contrast-{contrast}/{group_contrast}_permutation.tsv"
+        f"{BENCHMARK_DIR}/group/model-{{model}}/contrast-{{contrast}}/{{group_contrast}}_permutation.tsv"
     script:
         "../scripts/group_permutation.py"

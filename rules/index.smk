@@ -8,9 +8,9 @@ rule index:
     input:
         maps=indexed_maps(),
     output:
-        index=OUT + "/index.tsv",
-        description=OUT + "/dataset_description.json",
+        index=f"{OUT}/index.tsv",
+        description=f"{OUT}/dataset_description.json",
     log:
-        LOG_DIR + "/index.log",
+        f"{LOG_DIR}/index.log",
     script:
         "../scripts/index.py"

@@ -10,12 +10,12 @@ rule report:
     input:
         unpack(report_inputs),
     output:
-        study=REPORT_DIR + "/index.html",
+        study=f"{REPORT_DIR}/index.html",
         subject_pages=report_subject_pages(),
-        qc_table=REPORT_DIR + "/qc_runs.tsv",
+        qc_table=f"{REPORT_DIR}/qc_runs.tsv",
     params:
         settings=report_params(),
     log:
-        LOG_DIR + "/report.log",
+        f"{LOG_DIR}/report.log",
     script:
         "../scripts/report.py"

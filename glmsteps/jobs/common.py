@@ -18,6 +18,24 @@ from ..errors import GlmstepsError
 JobFunction = Callable[..., None]
 
 
+def process_start_time() -> float:
+    """When this job's process started (seconds since the epoch).
+
+    The launcher's client sets ``glmsteps.launch.PROCESS_START_VARIABLE`` to its own start (the job's
+    process as Snakemake sees it); otherwise the start of this process from ``/proc``, or
+    now when ``/proc`` is not there.
+    """
+    from ..launch import PROCESS_START_VARIABLE, own_start_time
+
+    handed = os.environ.pop(PROCESS_START_VARIABLE, "")
+    if handed:
+        try:
+            return float(handed)
+        except ValueError:
+            pass
+    return own_start_time()
+
+
 class SnakemakeLike(Protocol):
     """The attributes of the ``snakemake`` object a script receives."""
 
@@ -163,6 +181,7 @@ def run_script(job: JobFunction, smk: SnakemakeLike) -> None:
     """
     from ..provenance import deferred_sidecars, write_deferred_sidecars
 
+    process_start = process_start_time()
     log_files = list(getattr(smk, "log", []) or [])
     logger = setup_logging(str(log_files[0]) if log_files else None)
     start = time.perf_counter()
@@ -177,9 +196,11 @@ def run_script(job: JobFunction, smk: SnakemakeLike) -> None:
     previous = signal.signal(signal.SIGTERM, _raise_interrupted)
     try:
         with deferred_sidecars() as pending:
+            body_start = time.time()
             job(inputs=_named(smk.input), outputs=outputs, params=params,
                 wildcards=_named(smk.wildcards), threads=int(getattr(smk, "threads", 1) or 1))
             write_deferred_sidecars(pending, paths)
+            body_end = time.time()
     except GlmstepsError as exc:
         logger.error("%s: %s", type(exc).__name__, exc)
         discard_outputs(paths)
@@ -197,3 +218,6 @@ def run_script(job: JobFunction, smk: SnakemakeLike) -> None:
     finally:
         signal.signal(signal.SIGTERM, previous)
     logger.info("done in %.2f s", time.perf_counter() - start)
+    # read by tests/benchmarks/bench_workflow.py: start-up overhead and body of every job
+    logger.info("timing: process_start=%.3f body_start=%.3f body_end=%.3f (start-up %.3f s, body %.3f s)",
+                process_start, body_start, body_end, body_start - process_start, body_end - body_start)

@@ -1,6 +1,6 @@
 """Benchmark: DAG build time and peak memory for large synthetic studies (issue 7).
 
-Builds studies of 50, 200 and 500 subjects x 4 runs x 10 contrasts whose input files are
+Builds studies of 50, 200 and 500 subjects x 4 runs x 10 contrasts whose images are
 empty (only the DAG is built: ``snakemake --dry-run``), and prints wall time and peak RSS.
 Run by hand: ``python tests/benchmarks/bench_dag.py [n_subjects ...]``.
 """
@@ -20,7 +20,12 @@ import yaml
 REPO = Path(__file__).resolve().parents[2]
 
 
+#: Events of every synthetic run: the workflow's precheck reads each events file's condition column.
+EVENTS_TSV = "onset\tduration\ttrial_type\n" + "".join(f"{10 * k}\t1\tcond{k % 5}\n" for k in range(10))
+
+
 def make_study(root: Path, n_subjects: int, n_runs: int = 4) -> None:
+    """Synthetic BIDS-style inputs: empty images (only the DAG is built), real events tables."""
     for s in range(1, n_subjects + 1):
         func = root / f"sub-{s:03d}" / "func"
         func.mkdir(parents=True)
@@ -28,8 +33,9 @@ def make_study(root: Path, n_subjects: int, n_runs: int = 4) -> None:
         (root / f"sub-{s:03d}" / "anat" / f"sub-{s:03d}_mask.nii.gz").touch()
         for r in range(1, n_runs + 1):
             stem = f"sub-{s:03d}_task-big_run-{r}"
-            for suffix in ("_bold.nii.gz", "_events.tsv", "_confounds.tsv"):
+            for suffix in ("_bold.nii.gz", "_confounds.tsv"):
                 (func / f"{stem}{suffix}").touch()
+            (func / f"{stem}_events.tsv").write_text(EVENTS_TSV)
     (root / "participants.tsv").write_text("participant_id\tsite\n")
 
 
