@@ -19,20 +19,10 @@ rule contrast_t:
         step_command("contrast")
 
 
-rule contrast_f:
-    input:
-        fit=f"{RUN_DIR}/fit.h5",
+use rule contrast_t as contrast_f with:
     output:
         f=f"{RUN_DIR}/contrast-{{contrast}}/f.nii.gz",
         z=f"{RUN_DIR}/contrast-{{contrast}}/z.nii.gz",
         p=f"{RUN_DIR}/contrast-{{contrast}}/p.nii.gz",
-    params:
-        settings=contrast_params,
     wildcard_constraints:
         contrast=F_CONTRAST,
-    group:
-        "subject_{subject}"
-    log:
-        f"{LOG_DIR}/sub-{{subject}}/{{run_id}}/contrast-{{contrast}}.log",
-    shell:
-        step_command("contrast")
