@@ -43,7 +43,7 @@ from . import stats
 from .errors import GlmstepsWarning, GroupError
 from .fileio import read_json, read_user_tsv
 from .harmonise import harmonise_site_effects, harmonise_variances
-from .maps import load_map
+from .maps import load_map, map_block
 from .provenance import sidecar_path
 from .settings import GroupModelSettings
 
@@ -444,15 +444,15 @@ def group_pz(fit: gm.ContrastFit, tail: stats.Tail) -> tuple[npt.NDArray[np.floa
     return np.exp(log_p), stats.t_to_z(fit.t, fit.dof)
 
 
-def map_block(data: GroupData, wildcards: Mapping[str, str], stat: str) -> dict[str, Any]:
-    """The sidecar ``map`` block of a group map.
+def group_map_block(data: GroupData, wildcards: Mapping[str, str], stat: str) -> dict[str, Any]:
+    """The sidecar ``map`` block of a group map (:func:`glmsteps.maps.map_block`).
 
     ``contrast`` is ``<first-level contrast>.<group contrast>``; the parts are
     also under the sidecar's ``group`` block.
     """
     first = str(wildcards.get("contrast", ""))
-    return {"level": "group", "subject": None, "session": None, "task": data.task, "run": None,
-            "contrast": f"{first}.{data.contrast_name}" if first else data.contrast_name, "stat": stat}
+    return map_block("group", None, None, data.task, None,
+                     f"{first}.{data.contrast_name}" if first else data.contrast_name, stat)
 
 
 def group_summary(data: GroupData, wildcards: Mapping[str, str]) -> dict[str, Any]:

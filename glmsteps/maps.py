@@ -8,6 +8,7 @@ on the grid, NaN elsewhere, and write them as float32 NIfTI.
 from __future__ import annotations
 
 import os
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -113,3 +114,22 @@ def load_map(path: str | os.PathLike[str]) -> tuple[npt.NDArray[np.float32], npt
     if data.ndim != 3:
         raise DataError(f"{path}: expected a 3D map, found shape {data.shape}; pass a single-volume image")
     return data, np.asarray(img.affine, dtype=np.float64)
+
+
+def map_block(level: str, subject: str | None, session: str | None, task: str | None, run: str | None,
+              contrast: str | None, stat: str) -> dict[str, Any]:
+    """The ``map`` block of a map sidecar, which the index step turns into an ``index.tsv`` row.
+
+    The one builder of it for every step (fit, contrast, combine_runs, the group steps).
+
+    Parameters
+    ----------
+    level : str
+        ``run``, ``subject`` or ``group``.
+    subject, session, task, run, contrast : str or None
+        The map's BIDS entities and contrast (None or ``""`` where they do not apply).
+    stat : str
+        What the map holds (``effect``, ``t``, ``z``, ``p``, ``mean``, ...).
+    """
+    return {"level": level, "subject": subject, "session": session, "task": task, "run": run,
+            "contrast": contrast, "stat": stat}

@@ -121,9 +121,12 @@ def read_record(path: str | os.PathLike[str]) -> dict[str, Any] | None:
     return data
 
 
-def describe_input(path: str | os.PathLike[str]) -> dict[str, Any]:
-    """Describe one input file for a record: path, content hash, producer hashes."""
-    content = hash_file(path)
+def describe_input(path: str | os.PathLike[str], sha256: str | None = None) -> dict[str, Any]:
+    """Describe one input file for a record: path, content hash, producer hashes.
+
+    ``sha256`` is the file's hash when the caller already computed it (else it is read here).
+    """
+    content = sha256 or hash_file(path)
     producer = read_record(path)
     return {
         "path": display_path(path),
@@ -144,7 +147,8 @@ def lineage_hash(step: str, params_hash: str, inputs: Mapping[str, Any]) -> str:
 
 def build_record(step: str, params: Mapping[str, Any],
                  inputs: Mapping[str, str | os.PathLike[str] | Sequence[str | os.PathLike[str]]],
-                 warnings_seen: Sequence[str] = (), **extra: Any) -> dict[str, Any]:
+                 warnings_seen: Sequence[str] = (), precomputed: Mapping[str, str] | None = None,
+                 **extra: Any) -> dict[str, Any]:
     """Build the provenance record of a step's outputs.
 
     Parameters
@@ -157,12 +161,18 @@ def build_record(step: str, params: Mapping[str, Any],
         The files the step read.
     warnings_seen : sequence of str
         Warning messages raised while the step ran.
+    precomputed : mapping of input name to sha256 hex, optional
+        Inputs (single paths) whose bytes the step hashed while reading them (the fit
+        hashes its BOLD as it streams it); they are not read again.
     **extra
         Step-specific summary fields (counts, exclusions, ...).
     """
     described: dict[str, Any] = {}
+    known = precomputed or {}
     for name, value in inputs.items():
-        if isinstance(value, (str, os.PathLike)):
+        if name in known:
+            described[name] = describe_input(value, sha256=known[name])
+        elif isinstance(value, (str, os.PathLike)):
             described[name] = describe_input(value)
         else:
             described[name] = [describe_input(v) for v in value]

@@ -42,9 +42,9 @@ from ..combine import check_same_grid, fixed_effects, fixed_effects_f, run_contr
 from ..contrasts import MAP_KEYS, contrast_matrix, parse_spec
 from ..errors import ConfigError
 from ..fileio import save_nifti
-from ..maps import map_description, statistic_intent, unmask
+from ..maps import map_block, map_description, statistic_intent, unmask
 from ..settings import ContrastSettings
-from .contrast import contrast_of_fit, map_block
+from .contrast import contrast_of_fit
 
 STEP = "combine_runs"
 

@@ -30,17 +30,10 @@ from .. import provenance
 from ..bids import parse_run_id
 from ..contrasts import MAP_KEYS, evaluate_contrast, contrast_matrix, parse_spec
 from ..errors import ConfigError, ContrastError
-from ..maps import map_description, save_map, statistic_intent
+from ..maps import map_block, map_description, save_map, statistic_intent
 from ..settings import ContrastSettings
 
 STEP = "contrast"
-
-
-def map_block(level: str, subject: str, session: str, task: str, run: str, contrast: str,
-              stat: str) -> dict[str, str]:
-    """The ``map`` block of a map sidecar (turned into index rows by the index step)."""
-    return {"level": level, "subject": subject, "session": session, "task": task, "run": run,
-            "contrast": contrast, "stat": stat}
 
 
 def check_output_keys(kind: str, outputs: Mapping[str, str], name: str) -> None:

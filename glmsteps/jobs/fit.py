@@ -45,7 +45,7 @@ from ..errors import ConfigError, DataError, DesignError, GlmstepsWarning
 from ..fileio import read_json, read_numeric_tsv
 from ..fitstore import StoredFit, write_fit
 from ..fitting import NoiseSettings, VoxelFit, VoxelGrid, fit_voxels
-from ..maps import map_description, save_map, statistic_intent
+from ..maps import map_block, map_description, save_map, statistic_intent
 from ..settings import FitSettings
 from ..volumes import (AFFINE_TOLERANCE_MM, check_grid, read_bold_header, read_mask,
                        stream_masked)
@@ -194,44 +194,6 @@ def read_tissue(path: str, bold: Any) -> npt.NDArray[np.int64]:
     return data.astype(np.int64)
 
 
-# ---------------------------------------------------------------------------
-# provenance with a hash computed while streaming
-# ---------------------------------------------------------------------------
-
-def build_record_precomputed(params: Mapping[str, Any], inputs: Mapping[str, str], precomputed: Mapping[str, str],
-                             warnings_seen: list[str], **extra: Any) -> dict[str, Any]:
-    """``provenance.build_record`` for this step, with some inputs' sha256 already known.
-
-    Parameters
-    ----------
-    params, inputs, warnings_seen, **extra
-        As for ``provenance.build_record``.
-    precomputed : mapping of input name to sha256 hex
-        Inputs whose bytes were hashed while reading them; they are not read again.
-
-    Returns
-    -------
-    dict
-        The same record ``build_record`` would make.
-    """
-    others = {k: v for k, v in inputs.items() if k not in precomputed}
-    record = provenance.build_record(STEP, params, others, warnings_seen, **extra)
-    described = dict(record["inputs"])
-    for name, sha in precomputed.items():
-        path = inputs[name]
-        producer = provenance.read_record(path)
-        described[name] = {
-            "path": provenance.display_path(path),
-            "sha256": sha,
-            "step": producer.get("step") if producer else None,
-            "params_hash": producer.get("params_hash") if producer else None,
-            "lineage_hash": producer["lineage_hash"] if producer else sha,
-        }
-    record["inputs"] = {k: described[k] for k in inputs}
-    record["lineage_hash"] = provenance.lineage_hash(STEP, record["params_hash"], record["inputs"])
-    return record
-
-
 def _map_block(wildcards: Mapping[str, str], stat: str) -> dict[str, Any]:
     w = dict(wildcards)
     subject = str(w.get("subject", ""))
@@ -240,8 +202,7 @@ def _map_block(wildcards: Mapping[str, str], stat: str) -> dict[str, Any]:
         session, task, run = key.session, key.task, key.run
     else:
         session, task, run = str(w.get("session", "")), str(w.get("task", "")), str(w.get("run", ""))
-    return {"level": "run", "subject": subject, "session": session or None, "task": task, "run": run,
-            "contrast": None, "stat": stat}
+    return map_block("run", subject, session or None, task, run, None, stat)
 
 
 # ---------------------------------------------------------------------------
@@ -306,7 +267,8 @@ def run(inputs: Mapping[str, str | list[str]], outputs: Mapping[str, str], param
     if "timing_s_fit" in extra:
         timing["fit"] = extra.pop("timing_s_fit")
     timing["total_before_write"] = round(t_fit_end - t_start, 3)
-    record = build_record_precomputed(params, in_paths, {"bold": sha} if sha else {}, list(seen), **extra)
+    record = provenance.build_record(STEP, params, in_paths, list(seen), precomputed={"bold": sha} if sha else None,
+                                     **extra)
     fit.attrs.update({"autocorrelation": settings.autocorrelation, "scaling": settings.scaling,
                       "repetition_time_s": design_in.repetition_time_s})
     # --- write: sidecar first, then the fit, then the QC maps ----------------------------------------

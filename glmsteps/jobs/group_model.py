@@ -34,7 +34,8 @@ import pandas as pd
 
 from ..errors import GroupError
 from ..fileio import write_json
-from ..groupdata import fit_group_chunks, fit_summary, group_pz, group_summary, load_group_data, map_block
+from ..groupdata import (fit_group_chunks, fit_summary, group_map_block, group_pz, group_summary,
+                         load_group_data)
 from ..maps import map_description, save_map, statistic_intent
 from ..plots.sites import plot_site_effects
 from ..provenance import build_record, collect_warnings, write_sidecar
@@ -78,8 +79,8 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
                       value_columns=columns, panel_titles=titles)
     values = {"effect": fit.effect, "variance": fit.variance, "t": fit.t, "z": z, "p": p}
     for stat in ("effect", "variance", "t", "z", "p"):
-        write_sidecar(outputs[stat], record, map=map_block(data, wildcards, stat), group=summary, kind="t",
+        write_sidecar(outputs[stat], record, map=group_map_block(data, wildcards, stat), group=summary, kind="t",
                       tail=data.settings.tail)
         save_map(outputs[stat], values[stat], data.voxel_index, data.shape, data.affine,
                  intent=statistic_intent(stat, summary.get("dof_min")),
-                 description=map_description(stat, map_block(data, wildcards, stat)["contrast"], "group"))
+                 description=map_description(stat, group_map_block(data, wildcards, stat)["contrast"], "group"))

@@ -45,7 +45,7 @@ from .. import stats
 from ..clusters import round_cluster_table
 from ..errors import GlmstepsWarning, GroupError
 from ..fileio import write_tsv
-from ..groupdata import group_settings, group_summary, load_group_data, map_block
+from ..groupdata import group_map_block, group_settings, group_summary, load_group_data
 from ..maps import map_description, save_map, statistic_intent
 from ..provenance import build_record, collect_warnings, write_sidecar
 
@@ -122,12 +122,12 @@ def run(inputs: Mapping[str, Any], outputs: Mapping[str, str], params: Mapping[s
     tfce_note = None if settings.tfce else "tfce is false: this map is all NaN"
 
     write_sidecar(outputs["clusters"], record, group=summary, permutation=perm_block,
-                  map=map_block(data, wildcards, "clusters"))
+                  map=group_map_block(data, wildcards, "clusters"))
     write_tsv(outputs["clusters"], round_cluster_table(table))
     maps = {"p_fwe": (result.p_fwe, None), "p_fwe_cluster": (cluster_p, None), "p_fwe_tfce": (tfce_p, tfce_note)}
     for stat, (values, note) in maps.items():
         extra = {"note": note} if note else {}
-        write_sidecar(outputs[stat], record, map=map_block(data, wildcards, stat), group=summary,
+        write_sidecar(outputs[stat], record, map=group_map_block(data, wildcards, stat), group=summary,
                       permutation=perm_block, **extra)
         save_map(outputs[stat], values, voxel_index, data.shape, data.affine, intent=statistic_intent(stat),
-                 description=map_description(stat, map_block(data, wildcards, stat)["contrast"], "group"))
+                 description=map_description(stat, group_map_block(data, wildcards, stat)["contrast"], "group"))
