@@ -1,4 +1,4 @@
-"""The chunked voxel fit of a run: OLS, noise model, prewhitened refit.
+"""The chunked voxel fit of a run: OLS, autocorrelation model, prewhitened refit.
 
 Arrays and callables in, arrays out; no file access (the fit step,
 ``glmsteps.jobs.fit``, reads the run, calls :func:`fit_voxels` and writes the
@@ -10,7 +10,7 @@ independent of the other voxels of its chunk, and everything computed over
 all voxels at once (the autocorrelation references, the smoothing, the bins)
 runs after the first pass on whole arrays.
 
-Noise models (``NoiseSettings.model``):
+Autocorrelation models (``NoiseSettings.autocorrelation``):
 
 ``ols``
     no autocorrelation model.
@@ -57,7 +57,8 @@ class NoiseSettings:
 
     Attributes
     ----------
-    model : {"ols", "ar1", "arp"}
+    autocorrelation : {"ols", "ar1", "arp"}
+        The autocorrelation model (``fit.autocorrelation``).
     order : int
         AR order (1 for ``ar1``; the order that fits the design, see
         ``estimation.check_ar_order``, for ``arp``).
@@ -67,7 +68,7 @@ class NoiseSettings:
         Width of the lag-1 bins.
     """
 
-    model: est.NoiseModel
+    autocorrelation: est.AutocorrelationModel
     order: int
     smoothing_fwhm_mm: float
     bin_width: float
@@ -231,7 +232,7 @@ def _bin_models(design: est.DesignFactors, acf: npt.NDArray[np.float64], noise: 
     bin_index, centres = est.assign_bins(smoothed[0], noise.bin_width, grid.classes)
     np.clip(smoothed, -est.MAX_ABS_RHO, est.MAX_ABS_RHO, out=smoothed)
     means = est.bin_means(smoothed, bin_index, centres.size)
-    if noise.model == "ar1":
+    if noise.autocorrelation == "ar1":
         return bin_index, est.prepare_bins(design, means[:, 0])
     return bin_index, est.prepare_bins(design, means[:, 0], means)
 
@@ -246,7 +247,7 @@ def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], col
     Y : ndarray, shape (n_scans, n_voxels_in_mask), float32, or a one-element list holding it
         Unscaled signal. Given in a list, the array is taken out of the list and
         released as soon as it is no longer needed (after the first pass for
-        OLS and AR(1)), so that the noise model and writing run without it in memory.
+        OLS and AR(1)), so that the autocorrelation model and writing run without it in memory.
     columns : ndarray of int, shape (v,)
         Columns of ``Y`` to fit, in voxel order.
     factors : ndarray, shape (v,)
@@ -268,7 +269,7 @@ def fit_voxels(Y: npt.NDArray[np.floating] | list[npt.NDArray[np.floating]], col
         Y = Y.pop()
     v = columns.size
     n, p = design.X.shape
-    model = noise.model
+    model = noise.autocorrelation
     max_lag = noise.order if model == "arp" else 1
     starts = range(0, v, chunk)
 

@@ -542,7 +542,7 @@ def _fwhm(value: Any) -> float | None:
 
 @dataclass(frozen=True)
 class FitSettings(StepSettings):
-    """fit: scaling, noise model and the policy for non-finite voxels.
+    """fit: scaling, autocorrelation model and the policy for non-finite voxels.
 
     ``ar_order`` is 1 unless ``autocorrelation`` is ``arp`` (the order only applies there).
     """

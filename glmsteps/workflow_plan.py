@@ -119,7 +119,7 @@ def design_params(config: Mapping[str, Any]) -> dict[str, Any]:
 
 
 def fit_params(config: Mapping[str, Any]) -> dict[str, Any]:
-    """fit: scaling, noise model and non-finite voxel policy (chunk size and threads do not change results;
+    """fit: scaling, autocorrelation model and non-finite voxel policy (chunk size and threads do not change results;
     the tissue map is an input)."""
     f = config["fit"]
     return canonical({"scaling": f["scaling"], "grand_mean_value": f["grand_mean_value"],

@@ -115,7 +115,7 @@ def noise_settings(model: str, design: est.DesignFactors, fwhm_mm: float | None 
         fwhm = defaults.ar_smoothing_fwhm_mm
     if fwhm is None:
         fwhm = est.default_smoothing_fwhm_mm(np.full(3, VOXEL_MM))   # the fit step's rule
-    return fitting.NoiseSettings(model=model, order=order, smoothing_fwhm_mm=fwhm, bin_width=defaults.ar_bin_width)
+    return fitting.NoiseSettings(autocorrelation=model, order=order, smoothing_fwhm_mm=fwhm, bin_width=defaults.ar_bin_width)
 
 
 @dataclass(frozen=True)

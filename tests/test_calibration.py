@@ -1,4 +1,4 @@
-"""Calibration of the run-level noise models on simulated nulls (the fast subset; the full table is
+"""Calibration of the run-level autocorrelation models on simulated nulls (the fast subset; the full table is
 tests/benchmarks/bench_calibration.py).
 
 Simulations: tests/calibration_helpers.py (300 volumes, block and event designs, 128 s cosine drift,
@@ -55,7 +55,7 @@ def test_default_model_is_calibrated_on_nulls(noise: str, design: str, tr_s: flo
 
 @pytest.mark.slow
 def test_ar1_is_liberal_on_ar1_plus_white_block_designs() -> None:
-    # the defect this noise model fixes, and proof that the check above can fail: AR(1) on AR(1) + white
+    # the defect this autocorrelation model fixes, and proof that the check above can fail: AR(1) on AR(1) + white
     # noise is far outside even the family-wise interval at p < 0.001 (about 10x nominal)
     res = ch.null_cell("AR(1) 0.8 + white", "block", 2.0, "ar1", GRID, seed=11)
     lo, hi = family_interval(V, 0.001, K_NULL)

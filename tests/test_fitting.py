@@ -34,7 +34,7 @@ def test_results_do_not_depend_on_chunk_size_or_threads(model: str, classes: boo
     labels = rng.integers(0, 3, v) if classes else None
     grid = fitting.VoxelGrid(shape=GRID, flat_index=columns, voxel_size_mm=np.array([3.0, 3.0, 3.0]),
                              classes=labels)
-    noise = fitting.NoiseSettings(model=model, order=3 if model == "arp" else 1, smoothing_fwhm_mm=6.0,
+    noise = fitting.NoiseSettings(autocorrelation=model, order=3 if model == "arp" else 1, smoothing_fwhm_mm=6.0,
                                   bin_width=0.01)
     runs = [fitting.fit_voxels(Y, columns, factors, design, noise, size, grid, threads=threads)
             for size, threads in ((7, 1), (1000, 1), (7, 2), (64, 3), (v, 1))]

@@ -128,7 +128,7 @@ def test_job_end_to_end(tmp_path: Path) -> None:
         assert_allclose(fit.beta[0, k] / np.sqrt(fit.residual_variance[k] * c[0, 0]), gls.tvalues[0], rtol=1e-4)
 
 
-def test_default_noise_model_is_the_gls_of_each_bins_ar_model(tmp_path: Path) -> None:
+def test_default_autocorrelation_model_is_the_gls_of_each_bins_ar_model(tmp_path: Path) -> None:
     inputs = make_run(tmp_path, rho=0.5)
     out = tmp_path / "out"
     job.run(inputs, outputs_in(out), {"non_finite_voxels": "drop"}, WILDCARDS)

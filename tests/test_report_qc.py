@@ -32,7 +32,7 @@ def _fit(Y: np.ndarray, X: np.ndarray, roles: list[str], **params) -> tuple[fitt
     factors = est.compute_scale_factors(mean, settings.scaling, settings.grand_mean_value)
     columns = np.arange(Y.shape[1])
     order = 1 if settings.autocorrelation != "arp" else est.check_ar_order(design, settings.ar_order)
-    noise = fitting.NoiseSettings(model=settings.autocorrelation, order=order,
+    noise = fitting.NoiseSettings(autocorrelation=settings.autocorrelation, order=order,
                                   smoothing_fwhm_mm=0.0, bin_width=settings.ar_bin_width)
     grid = fitting.VoxelGrid(shape=(Y.shape[1], 1, 1), flat_index=columns.astype(np.int64),
                              voxel_size_mm=np.ones(3))

@@ -73,4 +73,5 @@ from .smoothing import (DEFAULT_SMOOTHING_VOXELS, convolve_axis, default_smoothi
 from .whitening import (Ar1Summary, NoiseBins, WhitenedBlock, assign_bins, bin_means, fit_ar1_block, fit_ar1_summary,
                         fit_arp_summary, prepare_bins, summarise_residuals, whiten_ar, whitened_covariance)
 
-NoiseModel = Literal["ols", "ar1", "arp"]
+#: The run-level autocorrelation models (``fit.autocorrelation``).
+AutocorrelationModel = Literal["ols", "ar1", "arp"]

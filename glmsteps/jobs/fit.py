@@ -325,7 +325,7 @@ def _fit_run(series: Any, mask: npt.NDArray[np.bool_], tissue: npt.NDArray[np.in
     grid = VoxelGrid(shape=tuple(int(s) for s in mask.shape), flat_index=voxel_index,
                      voxel_size_mm=np.asarray(bold.voxel_size_mm, dtype=np.float64),
                      classes=None if tissue is None else tissue.ravel()[voxel_index])
-    noise = NoiseSettings(model=settings.autocorrelation, order=order,
+    noise = NoiseSettings(autocorrelation=settings.autocorrelation, order=order,
                           smoothing_fwhm_mm=smoothing_fwhm_mm(settings, bold.voxel_size_mm),
                           bin_width=settings.ar_bin_width)
     t0 = time.perf_counter()

@@ -8,7 +8,7 @@ Temporal SNR
     factor; the factor is ``100 / m`` for percent scaling, one factor for the
     whole run for grand-mean scaling, 1 without scaling) and, for a
     prewhitened fit, ``sigma2`` is the variance of the whitened residuals,
-    i.e. of the innovations of the noise model. The marginal noise variance is
+    i.e. of the innovations of the autocorrelation model. The marginal noise variance is
     ``sigma2 / g`` with ``g = var(innovation) / var(noise)``: 1 for OLS,
     ``1 - rho^2`` for AR(1) (``rho`` the lag-1 coefficient the voxel was
     whitened with, its bin's), ``prod_k (1 - kappa_k^2)`` for AR(p) with
@@ -46,8 +46,9 @@ from typing import Literal
 import numpy as np
 import numpy.typing as npt
 
+from ..estimation import AutocorrelationModel
+
 FloatArray = npt.NDArray[np.float64]
-NoiseModel = Literal["ols", "ar1", "arp"]
 Direction = Literal["high", "low", "both"]
 Scaling = Literal["percent", "grand_mean", "none"]
 
@@ -125,9 +126,9 @@ def reflection_coefficients(phi: npt.ArrayLike) -> FloatArray:
     return kappa
 
 
-def innovation_ratio(model: NoiseModel, ar_coef: npt.ArrayLike | None = None,
+def innovation_ratio(model: AutocorrelationModel, ar_coef: npt.ArrayLike | None = None,
                      bin_rho: npt.ArrayLike | None = None, bin_index: npt.ArrayLike | None = None) -> FloatArray:
-    """``g = var(innovation) / var(noise)`` of each voxel's noise model.
+    """``g = var(innovation) / var(noise)`` of each voxel's autocorrelation model.
 
     Parameters
     ----------
@@ -165,7 +166,7 @@ def innovation_ratio(model: NoiseModel, ar_coef: npt.ArrayLike | None = None,
             raise ValueError("arp: ar_coef is required")
         kappa = reflection_coefficients(ar_coef)
         return np.prod(1.0 - kappa * kappa, axis=1)
-    raise ValueError(f"unknown noise model {model!r}; expected ols, ar1 or arp")
+    raise ValueError(f"unknown autocorrelation model {model!r}; expected ols, ar1 or arp")
 
 
 def temporal_snr(mean_signal: npt.ArrayLike, residual_variance: npt.ArrayLike, factors: npt.ArrayLike,

@@ -135,8 +135,8 @@ def _index_counts(index: Path, started: float) -> tuple[int, int, dict[str, int]
                 record = _read(path)
                 for _ in record.get("warnings") or []:
                     warnings[str(record.get("step", "?"))] += 1
-    runs = [f"sub-{s} {'ses-' + ses + ' ' if ses and ses != 'n/a' else ''}task-{t} run-{r}"
-            for (s, ses, t, r) in sorted(excluded)]
+    runs = [f"sub-{subject} {'ses-' + session + ' ' if session and session != 'n/a' else ''}task-{task} run-{run}"
+            for (subject, session, task, run) in sorted(excluded)]
     return n, written, dict(by_status), runs, dict(warnings)
 
 

@@ -1,4 +1,4 @@
-"""Calibration report of the run-level noise models (run by hand; prints tables, asserts nothing).
+"""Calibration report of the run-level autocorrelation models (run by hand; prints tables, asserts nothing).
 
     OPENBLAS_NUM_THREADS=1 nice -n 10 python tests/benchmarks/bench_calibration.py [--grid 40 50 50]
         [--sections null short_tr bias power edge]
@@ -59,24 +59,24 @@ def section_null(grid: tuple[int, int, int]) -> None:
     intervals = {a: ch.binomial_interval(v, a) for a in ALPHAS}
     print(f"\n## Null false-positive rates ({v} voxels per cell; binomial 95 % interval of the count: "
           + ", ".join(f"p < {a}: {lo:.0f}-{hi:.0f}" for a, (lo, hi) in intervals.items()) + ")\n")
-    print("| TR s | design | noise | model | A: p<0.05 | A: p<0.001 | A-B: p<0.05 | A-B: p<0.001 |")
+    print("| TR s | design | simulated noise | fitted with | A: p<0.05 | A: p<0.001 | A-B: p<0.05 | A-B: p<0.001 |")
     print("|---|---|---|---|---|---|---|---|")
     outside = {m: 0 for m in ("arp", "ar1")}
     cell = 0
     for tr in ch.TRS_S:
         for kind in ch.DESIGNS:
-            for noise in ch.NOISES:
+            for simulated in ch.NOISES:
                 cell += 1
-                for model in ("arp", "ar1"):
-                    res = ch.null_cell(noise, kind, tr, model, grid, seed=1000 + cell)
+                for fitted in ("arp", "ar1"):
+                    res = ch.null_cell(simulated, kind, tr, fitted, grid, seed=1000 + cell)
                     texts = []
                     for c in ("A", "A-B"):
                         for a in ALPHAS:
                             k = ch.false_positives(res.t[c], res.dof, a)
                             lo, hi = intervals[a]
-                            outside[model] += not lo <= k <= hi
+                            outside[fitted] += not lo <= k <= hi
                             texts.append(rate_text(k, v, a))
-                    print(f"| {tr} | {kind} | {noise} | {model} | " + " | ".join(texts) + " |", flush=True)
+                    print(f"| {tr} | {kind} | {simulated} | {fitted} | " + " | ".join(texts) + " |", flush=True)
     n_checks = cell * 4
     print(f"\nRates outside their 95 % interval: arp {outside['arp']} of {n_checks}, ar1 {outside['ar1']} of "
           f"{n_checks} (about {0.05 * n_checks:.0f} expected by chance for a calibrated model).")

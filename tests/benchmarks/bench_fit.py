@@ -8,10 +8,10 @@ scl_slope, 50 % of the box in the mask, AR(1) noise) it measures, each in a
 fresh subprocess so that peak memory (``ru_maxrss``) belongs to one task:
 
 * nibabel ``get_fdata()`` of the .nii.gz (the yardstick);
-* the whole fit job (stream + mask, OLS, noise model estimate, binned refit,
+* the whole fit job (stream + mask, OLS, autocorrelation model estimate, binned refit,
   HDF5 and QC maps written) with the step's defaults (``glmsteps.settings.FitSettings``:
   percent scaling, AR(8) with 5 mm smoothing of the estimates) and with each
-  noise model given by ``--models`` (default: the default model, then ``ar1``);
+  autocorrelation model given by ``--models`` (default: the default model, then ``ar1``);
 * a per-voxel statsmodels GLS loop on a sample of voxels, extrapolated to the
   whole mask.
 
