@@ -1,4 +1,4 @@
-"""Design column and basis names, in one place (no imports: cheap for the workflow start).
+"""Design column, basis and config names, in one place (standard library only: cheap for the workflow start).
 
 Column conventions (DEVELOPERS.md): a condition's main column is named as the
 condition; its other response columns are ``<condition>__latency`` (a shift of
@@ -9,6 +9,8 @@ expansions add ``_diff`` / ``_sq``; censoring columns ``spike_<vvvv>``; one
 ``intercept``. In an F contrast row, ``<condition>__all`` stands for every
 response column of the condition.
 """
+
+import re
 
 #: Basis label (and column suffix after ``__``) of the latency column: the temporal derivative.
 LATENCY_BASIS = "latency"
@@ -31,3 +33,14 @@ SQUARE_SUFFIX = "_sq"
 INTERCEPT = "intercept"
 #: F contrast key suffix selecting every response column of a condition.
 ALL_SUFFIX = "__all"
+
+
+#: Characters a contrast, threshold, group model or group contrast name may hold: each becomes a
+#: folder name (``contrast-<name>``, ...) and a Snakemake wildcard value.
+_FOLDER_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_]*")
+
+
+def is_folder_name(name: object) -> bool:
+    """Whether a config name can be a folder name: a string of letters, digits and underscores
+    starting with a letter or digit (YAML may make a key a number, which is not)."""
+    return isinstance(name, str) and _FOLDER_NAME.fullmatch(name) is not None

@@ -46,7 +46,7 @@ from typing import Any
 
 from .errors import ConfigError, ContrastError, EventsError
 from .names import (ALL_SUFFIX, BASIS_SEPARATOR, DIFF_SUFFIX, FIR_PREFIX, INTERCEPT, LATENCY_BASIS, MODULATOR_INFIX,
-                    SLOW_PREFIX, SPIKE_PREFIX, SQUARE_SUFFIX, WIDTH_BASIS)
+                    SLOW_PREFIX, SPIKE_PREFIX, SQUARE_SUFFIX, WIDTH_BASIS, is_folder_name)
 from .renames import renamed_column
 
 _NUISANCE = re.compile(rf"{INTERCEPT}|{SLOW_PREFIX}\d{{2,}}|{SPIKE_PREFIX}\d{{4,}}")
@@ -62,8 +62,6 @@ _MISSING = {"", "n/a"}
 #: name; 100 also keeps the deepest output path (group model, contrast, group contrast and threshold
 #: folders) far below the 4,096-byte path limit.
 MAX_NAME_LENGTH = 100
-#: Characters a name may hold: each is a folder name and a Snakemake wildcard value.
-_SAFE_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_]*")
 
 
 def read_conditions(path: str | os.PathLike[str], condition_column: str) -> set[str]:
@@ -310,7 +308,7 @@ def check_name(key: str, name: Any) -> None:
         or digit, or longer than :data:`MAX_NAME_LENGTH` characters.
     """
     text = str(name)
-    if not isinstance(name, str) or not _SAFE_NAME.fullmatch(text):
+    if not is_folder_name(name):
         raise ConfigError(f"config {key}: name {_shown(text)} is not usable as a folder name; rename it to letters, "
                           "digits and underscores, starting with a letter or digit (quote it in YAML)")
     if len(text) > MAX_NAME_LENGTH:

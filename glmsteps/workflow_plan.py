@@ -15,16 +15,14 @@ params would go unnoticed, while the text of the whole mapping names every key.
 from __future__ import annotations
 
 import os
-import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 from .bids import RunKey, parse_run_id
 from .errors import ConfigError
+from .names import is_folder_name
 
-#: Names of contrasts, thresholds, group models and group contrasts (they become folder names).
-NAME_PATTERN = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_]*$")
 #: Statistical maps of a t contrast and of an F contrast (run, subject and group level).
 T_MAPS: tuple[str, ...] = ("effect", "variance", "t", "z", "p")
 F_MAPS: tuple[str, ...] = ("f", "z", "p")
@@ -73,7 +71,7 @@ def check_names(config: Mapping[str, Any]) -> None:
     """
     def names_ok(kind: str, names: Sequence[str]) -> None:
         for name in names:
-            if not isinstance(name, str) or not NAME_PATTERN.match(name):
+            if not is_folder_name(name):
                 raise ConfigError(f"{kind} name {name!r} must be letters, digits and underscores, "
                                   "starting with a letter or digit (quote a number in YAML)")
 

@@ -25,6 +25,10 @@ def _step_header(node: StepNode) -> str:
             f"lineage {short_hash(node.lineage_hash)}")
 
 
+def _title_line(chain: Chain) -> str:
+    return f"provenance of {chain.target}" + (f"  (paths relative to {chain.root})" if chain.root else "")
+
+
 def render_text(chain: Chain) -> str:
     """The chain as an indented text tree; a step met again is referenced by number.
 
@@ -37,7 +41,7 @@ def render_text(chain: Chain) -> str:
     str
         Lines end with ``\\n``; hashes shortened to 12 hex digits.
     """
-    lines = [f"provenance of {chain.target}" + (f"  (paths relative to {chain.root})" if chain.root else "")]
+    lines = [_title_line(chain)]
     shown: set[int] = set()
     settings_shown: dict[tuple[str, str], int] = {}
 
@@ -132,7 +136,7 @@ def render_summary(chain: Chain) -> str:
         What ``glmsteps audit`` prints by default; ``--full`` prints
         :func:`render_text`, every job and file.
     """
-    lines = [f"provenance of {chain.target}" + (f"  (paths relative to {chain.root})" if chain.root else ""),
+    lines = [_title_line(chain),
              f"made by {chain.top.step}  params {short_hash(chain.top.params_hash)}  "
              f"lineage {short_hash(chain.top.lineage_hash)}"]
     summaries = summarise_steps(chain)
